@@ -1,0 +1,1 @@
+"""analysis stage of detdiff (see DEVELOPERS.md)."""

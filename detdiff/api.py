@@ -1,0 +1,94 @@
+"""Python API: the same pipeline as the CLI, returning pandas DataFrames with the CSV columns.
+
+>>> import detdiff
+>>> run = detdiff.audit("ann.json", images="imgs/", out="runs/a", config="fast")   # doctest: +SKIP
+>>> run.objects.sort_values("pos_score", ascending=False).head()                    # doctest: +SKIP
+>>> run.suspects[run.suspects.kind == "wrong_class"]                                # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+TABLES = ("images", "objects", "suspects", "classes", "causes")
+
+
+@dataclass
+class AuditRun:
+    """A finished run folder; tables are read from its CSV files on first use."""
+
+    rundir: Path
+
+    def _table(self, name: str) -> pd.DataFrame:
+        path = self.rundir / f"{name}.csv"
+        if not path.exists():
+            raise FileNotFoundError(f"{path}: table not written yet (run the audit or 'detdiff analyze')")
+        return pd.read_csv(path)
+
+    @cached_property
+    def images(self) -> pd.DataFrame:
+        """One row per image: scores per stream (higher = harder), percentiles, descriptors, why tags."""
+        return self._table("images")
+
+    @cached_property
+    def objects(self) -> pd.DataFrame:
+        """One row per annotation: scores, learning dynamics, descriptors, why tags."""
+        return self._table("objects")
+
+    @cached_property
+    def suspects(self) -> pd.DataFrame:
+        """Suspected label errors (kind, ids, box, suggested fix, score, evidence)."""
+        return self._table("suspects")
+
+    @cached_property
+    def classes(self) -> pd.DataFrame:
+        return self._table("classes")
+
+    @cached_property
+    def causes(self) -> pd.DataFrame:
+        """Effect of each descriptor on each stream (Spearman, lifts) with BH-corrected q-values."""
+        return self._table("causes")
+
+    @cached_property
+    def metrics(self) -> dict[str, Any]:
+        """COCOeval figures of the audit's own detector (how far its scores can be trusted)."""
+        return json.loads((self.rundir / "metrics.json").read_text())
+
+    @property
+    def report_path(self) -> Path:
+        return self.rundir / "report" / "index.html"
+
+
+def audit(annotations: str | Path, images: str | Path, out: str | Path, *, config: str | Path | None = None,
+          epochs: int | None = None, image_size: int | None = None, batch_size: int | None = None,
+          device: str | None = None, seed: int | None = None, resume: bool = False, progress: bool = True,
+          report: bool = True, thumbnails: bool | None = None) -> AuditRun:
+    """Run the full audit (check, train with loss logging, analyse, report) and return the run."""
+    from detdiff.pipeline import run_audit
+
+    overrides = {"data": {"image_size": image_size},
+                 "train": {"epochs": epochs, "batch_size": batch_size, "device": device, "seed": seed}}
+    run_audit(annotations, images, out, config_path=config, overrides=overrides, resume=resume,
+              progress=progress, make_report=report, thumbnails=thumbnails)
+    return AuditRun(Path(out))
+
+
+def open_run(rundir: str | Path) -> AuditRun:
+    """Open an existing run folder."""
+    rundir = Path(rundir)
+    if not rundir.is_dir():
+        raise FileNotFoundError(f"{rundir}: no such run folder")
+    return AuditRun(rundir)
+
+
+def check(annotations: str | Path, images: str | Path | None = None, *, verify_images: bool = False):
+    """Lint a COCO file; returns the LintReport (``.findings``, ``.exit_status``, ``.to_json()``)."""
+    from detdiff.data.lint import lint_coco
+
+    return lint_coco(annotations, images, verify_images=verify_images)

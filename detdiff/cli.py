@@ -1,0 +1,150 @@
+"""Command line: argument parsing only; each subcommand calls one function of the package.
+
+``main(argv) -> int`` is importable and testable. Expected failures (bad input, unusable folders,
+a diverging run) become one line on stderr and exit status 2, never a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from detdiff import __version__
+
+
+def _expected_errors() -> tuple[type[BaseException], ...]:
+    from detdiff.config import ConfigError
+    from detdiff.data.coco import CocoFormatError, UnsafeImagePath
+    from detdiff.pipeline import RunFolderError
+
+    errors: list[type[BaseException]] = [ConfigError, CocoFormatError, UnsafeImagePath, RunFolderError,
+                                         FileNotFoundError, PermissionError]
+    try:
+        from detdiff.train.loop import TrainingDiverged
+
+        errors.append(TrainingDiverged)
+    except ImportError:
+        pass
+    return tuple(errors)
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from detdiff.data.lint import run_check
+
+    return run_check(args.annotations, args.images, as_json=args.json, verify_images=args.verify_images)
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from detdiff.data.demo import generate_demo
+
+    paths = generate_demo(args.out, num_images=args.num_images, seed=args.seed, progress=not args.quiet)
+    print(f"demo dataset written:\n  annotations  {paths.annotations}\n  images       {paths.images_dir}\n"
+          f"  truth        {paths.truth}   (planted faults, for scoring the audit)\n"
+          f"next: detdiff audit {paths.annotations} --images {paths.images_dir} --out runs/demo")
+    return 0
+
+
+def _overrides(args: argparse.Namespace) -> dict:
+    return {
+        "data": {"image_size": args.image_size},
+        "train": {"epochs": args.epochs, "batch_size": args.batch_size, "device": args.device, "seed": args.seed,
+                  "threads": args.threads},
+    }
+
+
+def _cmd_audit(args: argparse.Namespace) -> int:
+    from detdiff.pipeline import run_audit
+
+    result = run_audit(args.annotations, args.images, args.out, config_path=args.config,
+                       overrides=_overrides(args), resume=args.resume, progress=not args.quiet,
+                       make_report=not args.no_report, top=args.top,
+                       thumbnails=False if args.no_thumbnails else None)
+    if result.summary:
+        print(result.summary)
+    return 0
+
+
+def _cmd_analyze(args: argparse.Namespace) -> int:
+    from detdiff.pipeline import analyze
+
+    tables = analyze(args.rundir)
+    print(f"{args.rundir}: {len(tables.images)} images, {len(tables.objects)} objects, "
+          f"{len(tables.suspects)} suspects written")
+    return 0
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from detdiff.pipeline import report
+
+    path = report(args.rundir, top=args.top, thumbnails=False if args.no_thumbnails else None)
+    print(f"report: {path}")
+    return 0
+
+
+def _add_report_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--top", type=int, default=None, help="items per list in the report (default: config)")
+    p.add_argument("--no-thumbnails", action="store_true",
+                   help="copy no dataset pixels into the report (for private or licensed images)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="detdiff", description="Audit a COCO detection dataset before training: which images and boxes "
+                                    "are hard, why, and which labels are probably wrong.")
+    parser.add_argument("--version", action="version", version=f"detdiff {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("check", help="lint a COCO annotation file (no training)")
+    p.add_argument("annotations", type=Path)
+    p.add_argument("--images", type=Path, default=None, help="image root folder (file_name is relative to it)")
+    p.add_argument("--json", action="store_true", help="print findings as JSON")
+    p.add_argument("--verify-images", action="store_true", help="also open every image (sizes, corrupt files)")
+    p.set_defaults(func=_cmd_check)
+
+    p = sub.add_parser("demo", help="generate the bundled warehouse demo dataset with planted label faults")
+    p.add_argument("--out", type=Path, required=True)
+    p.add_argument("--num-images", type=int, default=300)
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=_cmd_demo)
+
+    p = sub.add_parser("audit", help="check, train the small detector with loss logging, analyse, report")
+    p.add_argument("annotations", type=Path)
+    p.add_argument("--images", type=Path, required=True)
+    p.add_argument("--out", type=Path, required=True, help="run folder for every result")
+    p.add_argument("--config", default=None, help="YAML file or a name in configs/ (default, fast, ci)")
+    p.add_argument("--epochs", type=int, default=None)
+    p.add_argument("--image-size", type=int, default=None, help="side of the letterboxed training view, px")
+    p.add_argument("--batch-size", type=int, default=None)
+    p.add_argument("--device", choices=["cpu", "cuda", "auto"], default=None)
+    p.add_argument("--seed", type=int, default=None)
+    p.add_argument("--threads", type=int, default=None, help="torch threads (default: all cores)")
+    p.add_argument("--resume", action="store_true", help="continue after the last finished epoch")
+    p.add_argument("--no-report", action="store_true")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    _add_report_options(p)
+    p.set_defaults(func=_cmd_audit)
+
+    p = sub.add_parser("analyze", help="recompute the tables of a run folder from its training log")
+    p.add_argument("rundir", type=Path)
+    p.set_defaults(func=_cmd_analyze)
+
+    p = sub.add_parser("report", help="write the HTML report and plots of a run folder")
+    p.add_argument("rundir", type=Path)
+    _add_report_options(p)
+    p.set_defaults(func=_cmd_report)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``detdiff`` command; returns the exit status."""
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args))
+    except KeyboardInterrupt:
+        print("detdiff: interrupted; finished epochs are kept (use --resume)", file=sys.stderr)
+        return 130
+    except _expected_errors() as exc:
+        print(f"detdiff: {exc}", file=sys.stderr)
+        return 2

@@ -1,0 +1,1 @@
+"""data stage of detdiff (see DEVELOPERS.md)."""

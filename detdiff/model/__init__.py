@@ -1,0 +1,1 @@
+"""model stage of detdiff (see DEVELOPERS.md)."""

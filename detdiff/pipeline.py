@@ -1,0 +1,202 @@
+"""The audit as plain functions: check → image cache → train + log → evaluate → analysis → report.
+
+Each stage writes its results into the run folder before the next starts, so a failure later on loses
+nothing already computed, and ``detdiff analyze`` / ``detdiff report`` can redo the later stages alone.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from detdiff import __version__
+from detdiff.config import load_config, save_config
+from detdiff.data.coco import CocoDataset, build_dataset, load_saved_dataset, read_coco_json, save_dataset
+
+DATASET_FILE = "dataset.npz"
+
+
+class RunFolderError(RuntimeError):
+    """The run folder cannot be used (not writable, not a run folder, or from another dataset)."""
+
+
+@dataclass
+class AuditResult:
+    """Where an audit left its results."""
+
+    rundir: Path
+    report: Path | None
+    metrics: dict[str, Any]
+    summary: str
+
+
+def write_json_atomic(path: Path, payload: Any) -> None:
+    """Write JSON to a temporary name, then rename: a reader never sees half a file."""
+    tmp = path.with_name(path.name + f".tmp-{os.getpid()}")
+    tmp.write_text(json.dumps(payload, indent=2, default=str))
+    tmp.replace(path)
+
+
+def prepare_rundir(rundir: Path) -> None:
+    """Create the run folder and prove it is writable before any long work starts."""
+    try:
+        rundir.mkdir(parents=True, exist_ok=True)
+        probe = rundir / f".write-probe-{os.getpid()}"
+        probe.write_bytes(b"x" * 4096)
+        probe.unlink()
+    except OSError as exc:
+        raise RunFolderError(f"{rundir}: output folder is not writable ({exc.strerror or exc})") from exc
+
+
+def ingest(annotations: str | Path, images_dir: str | Path, rundir: Path, config: dict,
+           *, verify_images: bool = False) -> CocoDataset:
+    """Lint the annotation file, keep the findings, and build the dataset of usable records."""
+    from detdiff.data.lint import lint_coco
+
+    data = read_coco_json(annotations)
+    report = lint_coco(annotations, images_dir, verify_images=verify_images, data=data)
+    write_json_atomic(rundir / "findings.json", report.to_json())
+    dataset = build_dataset(data, ann_path=Path(annotations).resolve(), images_dir=Path(images_dir).resolve(),
+                            drop_image_ids=report.error_image_ids(), drop_ann_ids=report.error_annotation_ids(),
+                            min_box_side=float(config["data"]["min_box_side"]))
+    if dataset.num_images == 0:
+        raise RunFolderError(f"{annotations}: no usable image records (see {rundir / 'findings.json'})")
+    if dataset.num_classes == 0:
+        raise RunFolderError(f"{annotations}: no usable categories (see {rundir / 'findings.json'})")
+    save_dataset(dataset, rundir / DATASET_FILE)
+    return dataset
+
+
+def load_run(rundir: str | Path) -> tuple[CocoDataset, dict]:
+    """The dataset and config that a finished (or interrupted) audit used."""
+    rundir = Path(rundir)
+    if not (rundir / DATASET_FILE).exists() or not (rundir / "config.yaml").exists():
+        raise RunFolderError(f"{rundir}: not a detdiff run folder (no {DATASET_FILE} / config.yaml); "
+                             f"run 'detdiff audit' first")
+    import yaml
+
+    return load_saved_dataset(rundir / DATASET_FILE), yaml.safe_load((rundir / "config.yaml").read_text())
+
+
+def analyze(rundir: str | Path, dataset: CocoDataset | None = None, config: dict | None = None):
+    """Turn the training log into the tables (images, objects, suspects, classes, causes) and write them."""
+    from detdiff.analysis.tables import analyze_run, write_tables
+
+    rundir = Path(rundir)
+    if dataset is None or config is None:
+        dataset, config = load_run(rundir)
+    tables = analyze_run(rundir, dataset, config)
+    write_tables(tables, rundir, dataset)
+    return tables
+
+
+def report(rundir: str | Path, *, top: int | None = None, thumbnails: bool | None = None,
+           config: dict | None = None) -> Path:
+    """Write the HTML report and the PNG plots of a run folder."""
+    from detdiff.report.html import write_report
+
+    rundir = Path(rundir)
+    if config is None:
+        _, config = load_run(rundir)
+    rcfg = config["report"]
+    return write_report(rundir, top=int(top if top is not None else rcfg["top"]),
+                        thumbnails=bool(rcfg["thumbnails"] if thumbnails is None else thumbnails),
+                        thumbnail_size=int(rcfg["thumbnail_size"]))
+
+
+def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dict, resume: bool) -> dict:
+    """The config of this run: on ``--resume`` the saved one (only ``--epochs`` may extend it)."""
+    saved = rundir / "config.yaml"
+    if not (resume and saved.exists()):
+        return load_config(config_path, overrides)
+    import yaml
+
+    config = yaml.safe_load(saved.read_text())
+    epochs = overrides.get("train", {}).get("epochs")
+    if epochs is not None:
+        config["train"]["epochs"] = int(epochs)
+    if config_path is not None or any(v is not None for sec, kv in overrides.items() for k, v in kv.items()
+                                      if (sec, k) != ("train", "epochs")):
+        print(f"detdiff: --resume keeps the settings saved in {saved}; only --epochs is taken from the "
+              f"command line", file=sys.stderr)
+    return config
+
+
+def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Path, *,
+              config_path: str | Path | None = None, overrides: dict | None = None, resume: bool = False,
+              progress: bool = True, make_report: bool = True, top: int | None = None,
+              thumbnails: bool | None = None) -> AuditResult:
+    """Run the whole audit into ``rundir`` and return where the results are.
+
+    With ``torchrun`` every process calls this; only the main process lints, builds the cache,
+    evaluates, analyses and reports, the others train their shard.
+    """
+    from detdiff.data.image_cache import ImageCache, build_image_cache
+    from detdiff.train.distributed import barrier, init_distributed
+    from detdiff.train.evaluate import final_pass
+    from detdiff.train.loop import train_and_log
+
+    rundir = Path(rundir)
+    overrides = overrides or {}
+    config = _resolve_config(rundir, config_path, overrides, resume)
+    dist = init_distributed(config["train"]["device"])
+    timings: dict[str, float] = {}
+    t0 = time.perf_counter()
+    if dist.is_main:
+        prepare_rundir(rundir)
+        if not resume:
+            for stale in ("log", "checkpoint.pt"):
+                target = rundir / stale
+                if target.is_dir():
+                    shutil.rmtree(target)
+                elif target.exists():
+                    target.unlink()
+        save_config(config, rundir / "config.yaml")
+        dataset = ingest(annotations, images_dir, rundir, config)
+        timings["check_s"] = time.perf_counter() - t0
+        cache = build_image_cache(dataset, rundir / "cache", int(config["data"]["image_size"]),
+                                  max_pixels=int(config["data"]["max_pixels"]), progress=progress)
+        timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"]
+    barrier()
+    if not dist.is_main:
+        dataset = load_saved_dataset(rundir / DATASET_FILE)
+        cache = ImageCache.open(rundir / "cache")
+    t1 = time.perf_counter()
+    result = train_and_log(dataset, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
+    timings["train_s"] = time.perf_counter() - t1
+    if not dist.is_main:
+        return AuditResult(rundir, None, {}, "")
+
+    t2 = time.perf_counter()
+    metrics = final_pass(result.model, dataset, cache, config, rundir)
+    timings["evaluate_s"] = time.perf_counter() - t2
+    run_info = {
+        "detdiff_version": __version__, "annotations": str(Path(annotations).resolve()),
+        "images_dir": str(Path(images_dir).resolve()), "num_images": dataset.num_images,
+        "num_annotations": int((~dataset.iscrowd).sum()), "num_crowd": int(dataset.iscrowd.sum()),
+        "num_categories": dataset.num_classes, "num_usable_images": int(cache.usable.sum()),
+        "unusable_images": cache.problems, "config": config, "device": str(result.device),
+        "world_size": dist.world_size, "epochs_done": result.epochs_done,
+        "train_seconds": result.seconds, "images_per_second": result.images_per_second,
+        "data_loading_share": result.data_share, "timings": timings,
+    }
+    write_json_atomic(rundir / "run.json", run_info)
+    t3 = time.perf_counter()
+    analyze(rundir, dataset, config)
+    timings["analysis_s"] = time.perf_counter() - t3
+    report_path = None
+    if make_report:
+        t4 = time.perf_counter()
+        report_path = report(rundir, top=top, thumbnails=thumbnails, config=config)
+        timings["report_s"] = time.perf_counter() - t4
+    run_info["timings"] = timings
+    write_json_atomic(rundir / "run.json", run_info)
+    from detdiff.report.summary import terminal_summary
+
+    return AuditResult(rundir, report_path, metrics, terminal_summary(rundir))

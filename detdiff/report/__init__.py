@@ -1,0 +1,1 @@
+"""report stage of detdiff (see DEVELOPERS.md)."""

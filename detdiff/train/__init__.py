@@ -1,0 +1,1 @@
+"""train stage of detdiff (see DEVELOPERS.md)."""

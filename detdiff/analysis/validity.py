@@ -1,0 +1,108 @@
+"""Score an audit against planted truth (the demo's ``truth.json``): does it find what was planted?
+
+Used by the validity benchmark and the end-to-end tests. Rankings are compared with baselines in the
+same run: random scores, the image's box count, and the last epoch's loss instead of the accumulated one.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from sklearn.metrics import roc_auc_score
+import torch
+from torchvision.ops import box_iou
+
+from detdiff.train.loss_log import LossLog
+
+
+def _xywh_to_xyxy(b: np.ndarray) -> torch.Tensor:
+    b = torch.as_tensor(np.asarray(b, dtype=np.float64).reshape(-1, 4))
+    return torch.cat([b[:, :2], b[:, :2] + b[:, 2:]], dim=1)
+
+
+def auroc(scores: np.ndarray, positive: np.ndarray) -> float:
+    """Area under the ROC curve (scikit-learn); NaN scores count as the lowest."""
+    scores = np.asarray(scores, dtype=np.float64)
+    finite = np.isfinite(scores)
+    scores = np.where(finite, scores, scores[finite].min() - 1.0 if finite.any() else 0.0)
+    positive = np.asarray(positive, dtype=bool)
+    if positive.all() or not positive.any():
+        return float("nan")
+    return float(roc_auc_score(positive, scores))
+
+
+def _precision_recall_at_k(hits: np.ndarray, k: int, planted: int) -> tuple[float, float]:
+    top = hits[:k]
+    found = int(top.sum())
+    return (found / k if k else float("nan"), found / planted if planted else float("nan"))
+
+
+def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 0) -> dict:
+    """AUROCs and precision/recall@k of the audit in ``rundir`` against ``truth.json``, with baselines."""
+    rundir = Path(rundir)
+    truth = json.loads(Path(truth_path).read_text())
+    faults = pd.DataFrame(truth["faults"])
+    objects = pd.read_csv(rundir / "objects.csv")
+    images = pd.read_csv(rundir / "images.csv")
+    suspects = pd.read_csv(rundir / "suspects.csv")
+    rng = np.random.default_rng(seed)
+    log = LossLog.open(rundir / "log")
+    last_obj_cls = log.object_field("cls_sum")[-1] / np.maximum(1, log.object_field("num_anchors")[-1])
+    last_obj_loc = log.object_field("loc_sum")[-1] / np.maximum(1, log.object_field("num_anchors")[-1])
+    last_img_neg = log.image_field("neg_sum")[-1]
+    box_count = images.set_index("image_id")["box_count"]
+
+    def ids(kind: str, col: str = "annotation_id") -> set[int]:
+        rows = faults[faults["kind"] == kind] if len(faults) else faults
+        return set(int(v) for v in rows[col].dropna()) if len(rows) else set()
+
+    faulty_ann = ids("wrong_class") | ids("loose_box") | ids("duplicate_box")
+    out: dict[str, dict] = {}
+    for kind, score_col, last in (("wrong_class", "pos_score", last_obj_cls), ("loose_box", "loc_score", last_obj_loc)):
+        planted = ids(kind)
+        mask = objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)
+        sub = objects[mask]
+        pos = sub["annotation_id"].isin(planted).to_numpy()
+        out[kind] = {
+            "planted": len(planted), "stream": score_col,
+            "auroc": auroc(sub[score_col].to_numpy(), pos),
+            "auroc_last_epoch": auroc(np.asarray(last)[mask.to_numpy()], pos),
+            "auroc_box_count": auroc(box_count.reindex(sub["image_id"]).to_numpy(), pos),
+            "auroc_random": auroc(rng.random(len(sub)), pos),
+        }
+    missing_images = ids("missing_box", "image_id")
+    pos = images["image_id"].isin(missing_images).to_numpy()
+    out["missing_box"] = {
+        "planted": int((faults["kind"] == "missing_box").sum()) if len(faults) else 0, "stream": "neg_score",
+        "auroc": auroc(images["neg_score"].to_numpy(), pos),
+        "auroc_last_epoch": auroc(np.asarray(last_img_neg), pos),
+        "auroc_box_count": auroc(images["box_count"].to_numpy(), pos),
+        "auroc_random": auroc(rng.random(len(images)), pos),
+    }
+    out["duplicate_box"] = {"planted": len(ids("duplicate_box"))}
+
+    for kind in ("wrong_class", "loose_box", "duplicate_box", "missing_box"):
+        ranked = suspects[suspects["kind"] == kind].sort_values("score", ascending=False)
+        planted = out[kind]["planted"]
+        if kind == "missing_box":
+            truth_rows = faults[faults["kind"] == "missing_box"] if len(faults) else faults
+            hits = np.zeros(len(ranked), dtype=bool)
+            for i, (_, s) in enumerate(ranked.iterrows()):
+                same = truth_rows[truth_rows["image_id"] == s["image_id"]]
+                if len(same):
+                    iou = box_iou(_xywh_to_xyxy([s["x"], s["y"], s["w"], s["h"]]),
+                                  _xywh_to_xyxy(np.stack(same["bbox"].to_list())))
+                    hits[i] = bool((iou >= 0.5).any())
+        else:
+            hits = ranked["annotation_id"].isin(ids(kind)).to_numpy()
+        p, r = _precision_recall_at_k(hits, planted, planted)
+        out[kind].update({"suspects": len(ranked), "precision_at_k": p, "recall_at_k": r})
+        if kind == "wrong_class" and planted:
+            correct = ranked.merge(faults[faults["kind"] == kind][["annotation_id", "true_category_id"]],
+                                   on="annotation_id")
+            out[kind]["suggestion_accuracy"] = float(
+                (correct["suggested_category_id"] == correct["true_category_id"]).mean()) if len(correct) else float("nan")
+    return out

@@ -38,12 +38,22 @@ def read_coco_json(path: str | Path) -> dict[str, Any]:
         data = json.loads(text)
     except (ValueError, RecursionError) as exc:
         raise CocoFormatError(f"{path}: not valid JSON ({exc})") from exc
+    return check_coco_sections(data, path)
+
+
+def check_coco_sections(data: Any, source: str | Path) -> dict[str, Any]:
+    """Return ``data`` if it is an object whose images/annotations/categories are lists, else raise
+    :class:`CocoFormatError` naming ``source``."""
     if not isinstance(data, dict):
-        raise CocoFormatError(f"{path}: top level must be a JSON object with 'images', 'annotations' "
+        raise CocoFormatError(f"{source}: top level must be a JSON object with 'images', 'annotations' "
                               f"and 'categories', got {type(data).__name__}")
     missing = [k for k in ("images", "annotations", "categories") if k not in data]
     if missing:
-        raise CocoFormatError(f"{path}: not a COCO detection file: missing top-level key(s) {missing}")
+        raise CocoFormatError(f"{source}: not a COCO detection file: missing top-level key(s) {missing}")
+    not_lists = [f"{k!r} is {type(data[k]).__name__}" for k in ("images", "annotations", "categories")
+                 if not isinstance(data[k], list)]
+    if not_lists:
+        raise CocoFormatError(f"{source}: COCO sections must be JSON lists, but {', '.join(not_lists)}")
     return data
 
 

@@ -55,8 +55,9 @@ DEFAULT_FAULT_RATES: dict[str, float] = {
     "wrong_class": 0.04, "missing_box": 0.03, "loose_box": 0.04, "duplicate_box": 0.02}
 #: IoU between a planted loose box and its clean box lies in this range.
 LOOSE_BOX_IOU: tuple[float, float] = (0.5, 0.7)
-#: IoU between a planted duplicate and its original is above this.
-DUPLICATE_MIN_IOU = 0.9
+#: IoU between a planted duplicate and its original is above this (above lint's near-duplicate threshold 0.95,
+#: so `detdiff check` reports every planted duplicate).
+DUPLICATE_MIN_IOU = 0.95
 
 #: Share of images with each condition (drawn independently per image).
 IMAGE_CONDITION_RATES: dict[str, float] = {"blur": 0.12, "dim": 0.12, "clutter": 0.3, "crowded": 0.25}
@@ -532,11 +533,11 @@ def _loose_box(rng: np.random.Generator, clean: np.ndarray, width: int, height: 
 
 
 def _duplicate_box(rng: np.random.Generator, clean: np.ndarray, width: int, height: int) -> np.ndarray:
-    """A second box for the same object: an exact copy or a jitter of a few percent, IoU above 0.9."""
+    """A second box for the same object: an exact copy or a jitter of a few percent, IoU at least 0.97."""
     if rng.random() < 0.3:
         return clean.copy()
     for _ in range(20):
-        jitter = rng.uniform(-0.025, 0.025, 4) * np.concatenate([clean[2:], clean[2:]])
+        jitter = rng.uniform(-0.012, 0.012, 4) * np.concatenate([clean[2:], clean[2:]])
         box = _clip_box(clean + jitter, width, height)
         if box[2] > 0 and box[3] > 0 and _iou_xywh(box, clean) >= DUPLICATE_MIN_IOU + 0.02:
             return box

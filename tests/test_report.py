@@ -1,0 +1,308 @@
+"""The report stage: HTML page, thumbnails, PNG plots, sourcing sentences and the terminal summary.
+
+Outside references: Python's own ``html.parser`` tokenises the page (what a browser would see as tags,
+attributes and text); OpenCV decodes every PNG / JPEG written (``cv2.imread`` returns None for a file it
+cannot decode, OpenCV imgcodecs docs) and resizes the reference thumbnails; pandas recounts the suspects.
+"""
+
+from __future__ import annotations
+
+import html
+import re
+import shutil
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+from urllib.parse import unquote
+
+import cv2
+import numpy as np
+import pandas as pd
+import pytest
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from report_fixture import HOSTILE_CATEGORY, HOSTILE_FILE_NAME, make_run_folder  # noqa: E402
+
+from detdiff.report.html import crop_regions, el, write_report  # noqa: E402
+from detdiff.report.summary import (RunFolder, cause_subject, lint_code_counts, lint_totals,  # noqa: E402
+                                    read_table, significant_causes, sourcing_advice, spearman_phrase,
+                                    terminal_summary)
+
+TOP = 6
+
+
+class _Page(HTMLParser):
+    """Tags, attributes and decoded text of a page, as the standard-library HTML tokenizer sees them."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.tags: list[tuple[str, dict[str, str | None]]] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_startendtag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+    def attrs_of(self, tag: str) -> list[dict[str, str | None]]:
+        return [a for t, a in self.tags if t == tag]
+
+
+def _parse(page: Path) -> tuple[str, _Page]:
+    text = page.read_text(encoding="utf-8")
+    parser = _Page()
+    parser.feed(text)
+    parser.close()
+    return text, parser
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory):
+    rundir = make_run_folder(tmp_path_factory.mktemp("report"))
+    page = write_report(rundir, top=TOP, thumbnail_size=128)
+    return rundir, page
+
+
+def test_report_is_written_and_every_image_reference_exists(report):
+    rundir, page = report
+    assert page == rundir / "report" / "index.html" and page.is_file()
+    _, parsed = _parse(page)
+    sources = [a["src"] for a in parsed.attrs_of("img")]
+    assert sources, "the page shows no image"
+    assert any(s.startswith("thumbs/") for s in sources) and any(s.startswith("../plots/") for s in sources)
+    for src in sources:
+        target = (page.parent / unquote(src)).resolve()
+        assert target.is_file(), src
+        assert cv2.imread(str(target)) is not None, src   # OpenCV decodes it
+
+
+def test_page_makes_no_remote_reference(report):
+    _, page = report
+    text, parsed = _parse(page)
+    assert not re.search(r"https?://", text, flags=re.IGNORECASE)
+    for _, attrs in parsed.tags:
+        for name in ("src", "href"):
+            value = attrs.get(name)
+            if value is not None:
+                assert not value.startswith("//") and ":" not in value.split("/")[0], value
+    assert parsed.attrs_of("link") == []                              # no external stylesheet
+    assert all("src" not in a for a in parsed.attrs_of("script"))   # inline script only
+
+
+def test_dataset_strings_are_escaped(report):
+    _, page = report
+    text, parsed = _parse(page)
+    assert "<script>alert" not in text
+    assert html.escape(HOSTILE_CATEGORY, quote=True) in text
+    assert html.escape(HOSTILE_FILE_NAME, quote=True) in text
+    assert "<b>bold</b>" not in text and "box <x> leaves" not in text
+    # the tokenizer finds exactly our one script, no event-handler attribute, and the names as plain text
+    assert len(parsed.attrs_of("script")) == 1
+    assert not [name for _, attrs in parsed.tags for name in attrs if name.lower().startswith("on")]
+    decoded = "".join(parsed.text)
+    assert HOSTILE_CATEGORY in decoded and HOSTILE_FILE_NAME in decoded
+    titles = [a.get("title") for a in parsed.attrs_of("div") if a.get("title")]
+    assert HOSTILE_FILE_NAME in titles                                # quotes survive inside a quoted attribute
+
+
+def test_page_sections_and_warning(report):
+    rundir, page = report
+    text, parsed = _parse(page)
+    ids = {a.get("id") for _, a in parsed.tags}
+    assert {"overview", "actions", "stream-loc", "stream-pos", "stream-neg", "suspects", "classes", "map",
+            "settings", "suspects-wrong_class", "suspects-missing_box", "suspects-loose_box",
+            "suspects-duplicate_box"} <= ids
+    decoded = " ".join(" ".join(parsed.text).split())
+    assert "Detector quality too low" in decoded                     # metrics.json says not trustworthy
+    assert "Images with >= 12 boxes are 3.4 times as common among the hardest tenth for box regression " \
+           "as in the dataset (31% vs 9%)." in decoded
+    sortable = [a for a in parsed.attrs_of("table") if "sortable" in (a.get("class") or "")]
+    assert len(sortable) >= 4
+
+
+def test_lists_are_bounded_by_top(tmp_path):
+    rundir = make_run_folder(tmp_path, num_images=14)
+    page = write_report(rundir, top=2, thumbnail_size=64)
+    _, parsed = _parse(page)
+    figures = sum(1 for t, a in parsed.tags if t == "figure")
+    # 3 streams x (2 hardest + 1 easiest) images, 2 x 2 hardest objects, at most 2 per suspect kind
+    assert figures <= 3 * 3 + 2 * 2 + 4 * 2
+    thumbs = list((rundir / "report" / "thumbs").glob("*.jpg"))
+    assert 0 < len(thumbs) <= figures
+
+
+def test_thumbnail_matches_opencv_resize_of_the_image(report):
+    rundir, _ = report
+    run = RunFolder.load(rundir)
+    row = 2
+    image_id = int(run.images["image_id"].iloc[row])
+    original = cv2.imread(str(Path(run.run["images_dir"]) / run.images["file_name"].iloc[row]))
+    thumb = cv2.imread(str(rundir / "report" / "thumbs" / f"i{image_id}.jpg"))
+    # reference: OpenCV INTER_AREA resize to the same size (the longest side is thumbnail_size = 128)
+    assert max(thumb.shape[:2]) == 128
+    reference = cv2.resize(original, (thumb.shape[1], thumb.shape[0]), interpolation=cv2.INTER_AREA)
+    assert np.abs(thumb.astype(int) - reference.astype(int)).mean() < 4.0     # JPEG quality 85
+
+
+def test_thumbnail_is_drawn_in_the_annotated_frame_when_the_file_size_differs(tmp_path):
+    thumbnail_size = 40                                                # small: the file is decoded reduced
+    rundir = make_run_folder(tmp_path, num_images=4)
+    run = RunFolder.load(rundir)
+    row = 2
+    path = Path(run.run["images_dir"]) / run.images["file_name"].iloc[row]
+    larger = cv2.resize(cv2.imread(str(path)), (192, 192), interpolation=cv2.INTER_LINEAR)   # 2x wide, 8/3x tall
+    cv2.imwrite(str(path), larger)
+    write_report(rundir, top=4, thumbnail_size=thumbnail_size)
+    thumb = cv2.imread(str(rundir / "report" / "thumbs" / f"i{run.images['image_id'].iloc[row]}.jpg"))
+    width, height = int(run.images["width"].iloc[row]), int(run.images["height"].iloc[row])
+    assert thumb.shape[:2] == (round(height * thumbnail_size / width), thumbnail_size)    # images.csv aspect
+    # reference: OpenCV resize of the whole file onto the annotated frame's aspect
+    reference = cv2.resize(larger, (thumb.shape[1], thumb.shape[0]), interpolation=cv2.INTER_AREA)
+    assert np.abs(thumb.astype(int) - reference.astype(int)).mean() < 6.0
+
+
+def test_crop_regions_contain_both_boxes_and_stay_inside(report):
+    first = np.array([[10.0, 10, 20, 20], [80, 60, 10, 10], [0, 0, 5, 5], [np.nan] * 4])
+    second = np.array([[25.0, 12, 20, 20], [np.nan] * 4, [2, 2, 4, 4], [40, 30, 8, 8]])
+    width, height = np.full(4, 96.0), np.full(4, 72.0)
+    region = crop_regions(first, second, width, height)
+    # containment by definition of xywh boxes: x0 <= x and x + w <= x0 + side (same for y)
+    for boxes in (first, second):
+        ok = np.isfinite(boxes).all(axis=1)
+        assert np.all(region[ok, 0] <= boxes[ok, 0] + 1e-9)
+        assert np.all(region[ok, 1] <= boxes[ok, 1] + 1e-9)
+        assert np.all(boxes[ok, 0] + boxes[ok, 2] <= region[ok, 0] + region[ok, 2] + 1e-9)
+    assert np.all(region[:, 0] >= 0) and np.all(region[:, 1] >= 0)
+    assert np.all(region[:, 0] + region[:, 2] <= 96 + 1e-9)
+    assert np.allclose(region[:, 2], region[:, 3])                    # square
+
+
+def test_no_thumbnails_copies_no_pixels(report, tmp_path):
+    rundir = tmp_path / "run"
+    shutil.copytree(report[0], rundir)                               # a run reported with thumbnails...
+    assert (rundir / "report" / "thumbs").is_dir()
+    page = write_report(rundir, top=3, thumbnails=False)             # ...then without: the folder goes
+    assert not (rundir / "report" / "thumbs").exists()
+    text, parsed = _parse(page)
+    assert "data:" not in text
+    sources = [a["src"] for a in parsed.attrs_of("img")]
+    assert sources and all(s.startswith("../plots/") for s in sources)
+    decoded = " ".join(parsed.text)
+    assert "annotated 1: can [" in decoded                          # boxes listed as text instead
+
+
+def test_plots_are_valid_pngs(report):
+    rundir, _ = report
+    names = {"scores", "curves_loc", "curves_pos", "curves_neg", "causes_loc", "causes_pos", "causes_neg",
+             "object_map"}
+    for name in names:
+        path = rundir / "plots" / f"{name}.png"
+        assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name   # PNG signature (PNG spec, section 5.2)
+        image = cv2.imread(str(path))
+        assert image is not None and min(image.shape[:2]) > 100, name
+
+
+def test_terminal_summary(report):
+    rundir, page = report
+    text = terminal_summary(rundir)
+    assert "AP50 0.123" in text
+    assert "WARNING" in text
+    assert str(page) in text and "not written" not in text
+    suspects = pd.read_csv(rundir / "suspects.csv")
+    for kind, count in suspects["kind"].value_counts().items():    # counts recomputed with pandas
+        assert f"{count} {kind}" in text
+    assert "\x1b" not in text and len(text.splitlines()) <= 12
+
+
+def test_sourcing_sentences_carry_their_numbers(report):
+    rundir, _ = report
+    advice = sourcing_advice(RunFolder.load(rundir))
+    texts = [a.text for a in advice]
+    suspects = pd.read_csv(rundir / "suspects.csv")
+    wrong = int((suspects["kind"] == "wrong_class").sum())
+    assert (f"Relabel {wrong} boxes suspected of the wrong class, 1 of them 'can' labelled "
+            f"'{HOSTILE_CATEGORY}'.") in texts
+    assert "Small objects are 3.4 times as common among the hardest tenth for the positive-class loss as in the " \
+           "dataset (31% vs 9%)." in texts
+    assert any(t.startswith("Fix 1 error") for t in texts)
+    assert all(a.emphasis in a.text for a in advice)
+
+
+def test_strongest_causes_order(report):
+    rundir, _ = report
+    rows = significant_causes(RunFolder.load(rundir).causes, "pos")
+    # lift 3.4 first; then rho 0.42 before Mann-Whitney A = 0.62, i.e. rank-biserial 2A - 1 = 0.24 (Glass 1965)
+    assert rows["test"].tolist() == ["lift", "spearman", "mannwhitney"]
+    assert spearman_phrase(rows.iloc[2]) == "Objects at the border score higher 62% of the time"
+
+
+@pytest.mark.parametrize("level, descriptor, bin_text, expected", [
+    # bin labels as detdiff.analysis.causes writes them
+    ("image", "box_count", ">= 12 boxes", "Images with >= 12 boxes"),
+    ("image", "box_count", "2-4 boxes", "Images with 2-4 boxes"),
+    ("image", "box_count", "1 box", "Images with 1 box"),
+    ("object", "area", "small", "Small objects"),
+    ("image", "crowding", "0.3 to < 0.5", "Images with crowding from 0.3 to < 0.5"),
+    ("object", "max_iou", "IoU >= 0.3", "Objects overlapping another box at IoU >= 0.3"),
+    ("object", "max_iou", "no overlap", "Objects with no overlap"),
+    ("object", "occlusion", ">= 50% covered", "Objects >= 50% covered by other boxes"),
+    ("object", "truncation", "at the border", "Objects at the border"),
+    # other forms
+    ("image", "box_count", ">= 12", "Images with >= 12 boxes"),
+    ("object", "size_bin", "small", "Small objects"),
+    ("image", "brightness", "< 80", "Images with brightness < 80"),
+    ("object", "occlusion", "[0.5, 1.0]", "Objects with occlusion in [0.5, 1.0]"),
+    ("image", "contrast", "low", "Images with low contrast"),
+    ("object", "category_name", "can", "Objects labelled 'can'"),
+    ("object", "aspect", "", "Objects with high aspect ratio"),
+])
+def test_cause_subject(level, descriptor, bin_text, expected):
+    assert cause_subject(level, descriptor, bin_text) == expected
+
+
+def test_builder_refuses_handlers_and_url_schemes():
+    assert el("td", {"title": "\"><script>"}, "<b>") == '<td title="&quot;&gt;&lt;script&gt;">&lt;b&gt;</td>'
+    with pytest.raises(ValueError):
+        el("img", {"onerror": "alert(1)"})
+    with pytest.raises(ValueError):
+        el("a", {"href": "javascript:alert(1)"}, "x")
+    with pytest.raises(ValueError):
+        el("img", {"src": "https://example.org/x.png"})
+
+
+def test_text_that_looks_missing_stays_text(tmp_path):
+    path = tmp_path / "classes.csv"
+    pd.DataFrame({"category_id": [1, 2], "category_name": ["NA", "null"]}).to_csv(path, index=False)
+    table = read_table(path, ("category_id", "category_name"))
+    assert table["category_name"].tolist() == ["NA", "null"]
+
+
+def test_partial_run_folder_still_reports(tmp_path):
+    rundir = make_run_folder(tmp_path)
+    for name in ("causes.csv", "suspects.csv", "detections.json", "findings.json", "classes.csv"):
+        (rundir / name).unlink()
+    shutil.rmtree(rundir / "log")
+    page = write_report(rundir, top=3)
+    _, parsed = _parse(page)
+    decoded = " ".join(parsed.text)
+    assert "No cause statistics for this stream." in decoded and "No training log" in decoded
+    assert "Suspected label errors: 0 wrong_class" in terminal_summary(rundir)
+    with pytest.raises(FileNotFoundError, match="images.csv"):
+        write_report(tmp_path / "nowhere")
+
+
+def test_lint_counts_prefer_exact_totals_over_the_capped_list():
+    findings = {"totals": {"error": 3, "warning": 0, "info": 0},
+                "codes": {"bad_bbox": {"severity": "error", "count": 3, "listed": 1}},
+                "findings": [{"severity": "error", "code": "bad_bbox", "message": "m"}]}
+    assert lint_totals(findings) == {"error": 3, "warning": 0, "info": 0}
+    assert lint_code_counts(findings).to_dict("records") == [{"severity": "error", "code": "bad_bbox", "count": 3}]
+    listed_only = {"findings": [{"severity": "warning", "code": "a"}, {"severity": "warning", "code": "a"},
+                                {"severity": "error", "code": "b"}]}
+    assert lint_code_counts(listed_only).to_dict("records") == [
+        {"severity": "warning", "code": "a", "count": 2}, {"severity": "error", "code": "b", "count": 1}]
+    assert lint_totals(listed_only) == {"error": 1, "warning": 2}

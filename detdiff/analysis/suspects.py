@@ -1,0 +1,272 @@
+"""Suspected label errors, each with a score (higher = more suspicious, comparable within a kind), an
+evidence sentence carrying its numbers, and a suggested fix.
+
+"Late epochs" are the last ``analysis.late_fraction`` of the logged epochs (at least one); "persistent"
+means in at least half of them, and in at least two when there are two or more (with two late epochs,
+one epoch out of two is a fluke, not a pattern): see :func:`required_epochs`. A "high" score is one in the stream's top ``analysis.top_fraction`` (the
+same "hard" as the lifts of :mod:`detdiff.analysis.causes`).
+
+- wrong_class: high pos_score, and in >= ``analysis.wrong_class_min_epochs`` of the late epochs another
+  class wins on the box: the best matched anchor predicts another class with IoU >= 0.5, or the strongest
+  other class's logit beats the labelled one. Suggestion: the class that won most often.
+  score = share of late epochs won x sigmoid(mean late logit_other - logit_label).
+- missing_box: confident detections that match no annotation (``LossLog.unmatched``), clustered across
+  the late epochs per image by IoU >= 0.5 and the same class; clusters present in >= half the late epochs
+  are proposed as a box = per-coordinate median. score = presence share x mean detection score.
+- loose_box: high loc_score and a predicted box with IoU inside ``analysis.loose_box_iou`` in >= half the
+  late epochs. Suggestion: the median predicted box of those epochs. score = share x (1 - IoU(annotation,
+  suggestion)).
+- duplicate_box: same class, IoU > ``analysis.duplicate_iou``, same image: the later annotation id is the
+  suspect. Suggestion: delete it. score = IoU.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+import scipy.sparse
+import scipy.sparse.csgraph
+
+from detdiff.analysis.descriptors import PairwiseOverlap, group_pairs, pair_iou
+from detdiff.analysis.dynamics import sigmoid
+from detdiff.data.coco import CocoDataset
+from detdiff.train.loss_log import LossLog
+
+CLUSTER_IOU = 0.5      # same detection across epochs (the PASCAL VOC / COCO AP50 match rule)
+WRONG_CLASS_IOU = 0.5
+SUSPECT_COLUMNS = ["kind", "image_id", "annotation_id", "x", "y", "w", "h", "suggested_category_id",
+                   "suggested_x", "suggested_y", "suggested_w", "suggested_h", "score", "evidence"]
+#: extra columns: image / annotation rows, the class the suspect concerns, the fix as a verb, and for a
+#: duplicate the annotation it repeats
+EXTRA_COLUMNS = ["image_index", "ann_index", "category_id", "suggested_action", "duplicate_of"]
+
+
+def late_epochs(epochs: list[int], late_fraction: float) -> list[int]:
+    """The last ``late_fraction`` of ``epochs`` (at least one)."""
+    if not 0 < late_fraction <= 1:
+        raise ValueError(f"analysis.late_fraction must be in (0, 1], got {late_fraction}")
+    count = max(1, math.ceil(len(epochs) * late_fraction))
+    return list(epochs[-count:])
+
+
+def required_epochs(available: np.ndarray, share: float) -> np.ndarray:
+    """Epochs a signal must be present in, out of ``available`` late epochs, to count as persistent:
+    ``max(ceil(share * n), min(2, n))`` elementwise."""
+    n = np.asarray(available)
+    return np.maximum(np.ceil(share * n - 1e-9), np.minimum(2, n)).astype(np.int64)
+
+
+def _xyxy(b: np.ndarray) -> np.ndarray:
+    return np.concatenate([b[..., :2], b[..., :2] + b[..., 2:]], axis=-1)
+
+
+def _xywh(b: np.ndarray) -> np.ndarray:
+    return np.concatenate([b[..., :2], b[..., 2:] - b[..., :2]], axis=-1)
+
+
+def _frame(dataset: CocoDataset, kind: str, rows: np.ndarray, *, score: np.ndarray, evidence: list[str],
+           action: str, image_rows: np.ndarray | None = None, suggested_label: np.ndarray | None = None,
+           suggested_box: np.ndarray | None = None, duplicate_of: np.ndarray | None = None) -> pd.DataFrame:
+    """Suspect rows in the suspects.csv layout (plus :data:`EXTRA_COLUMNS`).
+
+    ``rows [N]``: annotation rows, -1 where the suspect has no annotation (then ``image_rows [N]`` says
+    which image); ``suggested_label`` category indices (-1 none); ``duplicate_of`` annotation rows.
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    n = len(rows)
+    has_ann = rows >= 0
+    img = np.where(has_ann, _take(dataset.ann_image_index, rows), -1 if image_rows is None else image_rows)
+    box = np.where(has_ann[:, None], _take(dataset.boxes, rows), np.nan)
+    sugg_label = np.full(n, -1) if suggested_label is None else np.asarray(suggested_label, dtype=np.int64)
+    sugg_box = np.full((n, 4), np.nan) if suggested_box is None else np.asarray(suggested_box, dtype=np.float64)
+    topic_label = np.where(has_ann, _take(dataset.labels, rows), sugg_label)
+    dup = np.full(n, -1) if duplicate_of is None else np.asarray(duplicate_of, dtype=np.int64)
+    cat = dataset.category_ids
+    return pd.DataFrame({
+        "kind": pd.Series([kind] * n, dtype=object),
+        "image_id": dataset.image_ids[img],
+        "annotation_id": _nullable_ids(_take(dataset.ann_ids, rows), has_ann),
+        "x": box[:, 0], "y": box[:, 1], "w": box[:, 2], "h": box[:, 3],
+        "suggested_category_id": _nullable_ids(_take(cat, sugg_label), sugg_label >= 0),
+        "suggested_x": sugg_box[:, 0], "suggested_y": sugg_box[:, 1],
+        "suggested_w": sugg_box[:, 2], "suggested_h": sugg_box[:, 3],
+        "score": np.asarray(score, dtype=np.float64),
+        "evidence": pd.Series(list(evidence), dtype=object),
+        "image_index": img.astype(np.int64),
+        "ann_index": rows,
+        "category_id": _take(cat, topic_label),
+        "suggested_action": pd.Series([action] * n, dtype=object),
+        "duplicate_of": _nullable_ids(_take(dataset.ann_ids, dup), dup >= 0),
+    })
+
+
+def _take(values: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """``values[rows]`` with rows < 0 giving 0 (also when ``values`` is empty)."""
+    if not len(values):
+        return np.zeros((len(rows), *values.shape[1:]), dtype=values.dtype)
+    return np.where((rows >= 0).reshape(-1, *[1] * (values.ndim - 1)), values[np.maximum(rows, 0)], 0)
+
+
+def _nullable_ids(values: np.ndarray, present: np.ndarray) -> pd.arrays.IntegerArray:
+    """Integer ids as a pandas nullable Int64 array, <NA> where ``present`` is false (empty in the CSV)."""
+    return pd.arrays.IntegerArray(np.asarray(values, dtype=np.int64), ~np.asarray(present, dtype=bool))
+
+
+def _name(dataset: CocoDataset, label: int) -> str:
+    return dataset.category_names[int(label)]
+
+
+def wrong_class_suspects(dataset: CocoDataset, late: LossLog, pos_pct: np.ndarray, *, min_share: float,
+                         high_pct: float) -> pd.DataFrame:
+    """Objects on which another class wins persistently in the late epochs (see module docstring).
+
+    ``late``: the log restricted to the late epochs; ``pos_pct [A]``: percentile of pos_score (NaN = -1);
+    a suspect needs ``pos_pct >= high_pct``.
+    """
+    labels = dataset.labels
+    valid = late.object_field("num_anchors") >= 0                              # [L, A]
+    pred_label = late.object_field("pred_label")
+    pred_iou = late.object_field("pred_iou")
+    logit_label = late.object_field("logit_label").astype(np.float64)
+    logit_other = late.object_field("logit_other").astype(np.float64)
+    other_label = late.object_field("other_label")
+    by_pred = (pred_label >= 0) & (pred_label != labels) & (pred_iou >= WRONG_CLASS_IOU)
+    by_logit = (other_label >= 0) & (logit_other > logit_label)
+    won = valid & (by_pred | by_logit)
+    winner = np.where(by_pred, pred_label, other_label)
+    n_valid = valid.sum(axis=0)
+    n_won = won.sum(axis=0)
+    share = n_won / np.maximum(n_valid, 1)
+    persistent = n_won >= required_epochs(n_valid, min_share)
+    rows = np.flatnonzero((n_valid > 0) & persistent & (pos_pct >= high_pct) & ~dataset.iscrowd)
+    if not len(rows):
+        return _frame(dataset, "wrong_class", rows, score=np.zeros(0), evidence=[], action="relabel")
+    # most frequent winning class per suspect: one-hot counts over classes, argmax
+    w = won[:, rows]
+    counts = np.zeros((len(rows), dataset.num_classes), dtype=np.int64)
+    cols = np.broadcast_to(np.arange(len(rows)), w.shape)[w]
+    np.add.at(counts, (cols, winner[:, rows][w]), 1)
+    suggested = counts.argmax(axis=1)
+    margin = np.nanmean(np.where(valid[:, rows], logit_other[:, rows] - logit_label[:, rows], np.nan), axis=0)
+    iou = np.nanmean(np.where(won[:, rows], pred_iou[:, rows], np.nan), axis=0)
+    score = share[rows] * sigmoid(margin)
+    evidence = [f"the detector preferred '{_name(dataset, s)}' over the labelled '{_name(dataset, labels[r])}' in "
+                f"{int(won[:, r].sum())} of {int(n_valid[r])} late epochs (mean IoU {i:.2f}, mean logit margin "
+                f"{m:+.2f}); pos_score at the {p:.0f}th percentile"
+                for r, s, i, m, p in zip(rows, suggested, iou, margin, pos_pct[rows])]
+    return _frame(dataset, "wrong_class", rows, suggested_label=suggested, score=score, evidence=evidence,
+                  action="relabel")
+
+
+def loose_box_suspects(dataset: CocoDataset, late: LossLog, loc_pct: np.ndarray, *,
+                       iou_range: tuple[float, float], high_pct: float) -> pd.DataFrame:
+    """Objects whose late predicted boxes persistently overlap them only loosely (see module docstring).
+
+    ``loc_pct [A]``: percentile of loc_score (NaN = -1); a suspect needs ``loc_pct >= high_pct``.
+    """
+    lo, hi = float(iou_range[0]), float(iou_range[1])
+    valid = late.object_field("num_anchors") >= 0
+    pred_iou = late.object_field("pred_iou")
+    in_range = valid & (pred_iou >= lo) & (pred_iou <= hi)
+    n_valid = valid.sum(axis=0)
+    n_in = in_range.sum(axis=0)
+    share = n_in / np.maximum(n_valid, 1)
+    persistent = n_in >= required_epochs(n_valid, 0.5)
+    rows = np.flatnonzero((n_valid > 0) & persistent & (loc_pct >= high_pct) & ~dataset.iscrowd)
+    if not len(rows):
+        return _frame(dataset, "loose_box", rows, score=np.zeros(0), evidence=[], action="replace_box")
+    pred = _xyxy(late.object_field("pred_box")[:, rows].astype(np.float64))   # [L, R, 4]
+    pred[~in_range[:, rows]] = np.nan
+    suggested = _xywh(np.nanmedian(pred, axis=0))
+    ann = _xyxy(dataset.boxes[rows])
+    iou = pair_iou(np.concatenate([ann, _xyxy(suggested)]), np.arange(len(rows)), np.arange(len(rows)) + len(rows))
+    score = share[rows] * (1.0 - iou)
+    evidence = [f"in {int(in_range[:, r].sum())} of {int(n_valid[r])} late epochs the predicted box overlapped the "
+                f"annotation with IoU {lo:.2f}-{hi:.2f} (median predicted box IoU {i:.2f}); loc_score at the "
+                f"{p:.0f}th percentile" for r, i, p in zip(rows, iou, loc_pct[rows])]
+    return _frame(dataset, "loose_box", rows, suggested_label=dataset.labels[rows], suggested_box=suggested,
+                  score=score, evidence=evidence, action="replace_box")
+
+
+def duplicate_box_suspects(dataset: CocoDataset, overlap: PairwiseOverlap, *, min_iou: float) -> pd.DataFrame:
+    """Later annotations that repeat an earlier same-class box of the image with IoU > ``min_iou``."""
+    rows = np.flatnonzero((overlap.dup_iou > min_iou) & (overlap.dup_partner >= 0))
+    partner = overlap.dup_partner[rows]
+    iou = overlap.dup_iou[rows]
+    evidence = [f"same class '{_name(dataset, dataset.labels[r])}' and IoU {i:.3f} with annotation "
+                f"{int(dataset.ann_ids[p])} of the same image" for r, p, i in zip(rows, partner, iou)]
+    return _frame(dataset, "duplicate_box", rows, score=iou, evidence=evidence, action="delete",
+                  duplicate_of=partner)
+
+
+def missing_box_suspects(dataset: CocoDataset, log: LossLog, epochs: list[int]) -> pd.DataFrame:
+    """Persistent unmatched detections of ``epochs`` clustered into proposed boxes (see module docstring)."""
+    parts = [(k, log.unmatched(e)) for k, e in enumerate(epochs)]
+    epoch_pos = np.concatenate([np.full(len(u["score"]), k) for k, u in parts]).astype(np.int64)
+    image = np.concatenate([u["image_index"] for _, u in parts]).astype(np.int64)
+    label = np.concatenate([u["label"] for _, u in parts]).astype(np.int64)
+    score = np.concatenate([u["score"] for _, u in parts]).astype(np.float64)
+    box = np.concatenate([u["box"] for _, u in parts]).astype(np.float64).reshape(-1, 4)
+    ok = (image >= 0) & (image < dataset.num_images) & (label >= 0) & np.isfinite(box).all(axis=1)
+    empty = _frame(dataset, "missing_box", np.zeros(0, np.int64), score=np.zeros(0), evidence=[], action="add")
+    if not ok.any():
+        return empty
+    order = np.lexsort((epoch_pos[ok], label[ok], image[ok]))
+    epoch_pos, image, label, score, box = (a[ok][order] for a in (epoch_pos, image, label, score, box))
+    xyxy = _xyxy(box)
+    key = image * dataset.num_classes + label
+    starts = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
+    offsets = np.r_[starts, len(key)]
+    src, dst = [], []
+    for rows_i, rows_j in group_pairs(offsets):
+        close = pair_iou(xyxy, rows_i, rows_j) >= CLUSTER_IOU
+        src.append(rows_i[close])
+        dst.append(rows_j[close])
+    src_all = np.concatenate(src) if src else np.zeros(0, np.int64)
+    dst_all = np.concatenate(dst) if dst else np.zeros(0, np.int64)
+    graph = scipy.sparse.coo_matrix((np.ones(len(src_all)), (src_all, dst_all)), shape=(len(key), len(key)))
+    _, cluster = scipy.sparse.csgraph.connected_components(graph, directed=False)
+    frame = pd.DataFrame({"cluster": cluster, "epoch": epoch_pos, "image": image, "label": label, "score": score,
+                          "x1": xyxy[:, 0], "y1": xyxy[:, 1], "x2": xyxy[:, 2], "y2": xyxy[:, 3]})
+    groups = frame.groupby("cluster")
+    summary = groups.agg(image=("image", "first"), label=("label", "first"), epochs=("epoch", "nunique"),
+                         mean_score=("score", "mean"), x1=("x1", "median"), y1=("y1", "median"),
+                         x2=("x2", "median"), y2=("y2", "median"))
+    summary = summary[summary["epochs"] >= int(required_epochs(np.array(len(epochs)), 0.5))]
+    if summary.empty:
+        return empty
+    share = summary["epochs"].to_numpy() / len(epochs)
+    proposed = _xywh(summary[["x1", "y1", "x2", "y2"]].to_numpy())
+    labels = summary["label"].to_numpy()
+    evidence = [f"a '{_name(dataset, lb)}' detection matching no annotation in {int(k)} of {len(epochs)} late "
+                f"epochs (mean score {s:.2f}) at [{b[0]:.0f}, {b[1]:.0f}, {b[2]:.0f}, {b[3]:.0f}]"
+                for lb, k, s, b in zip(labels, summary["epochs"], summary["mean_score"], proposed)]
+    return _frame(dataset, "missing_box", np.full(len(summary), -1, dtype=np.int64),
+                  image_rows=summary["image"].to_numpy(), suggested_label=labels, suggested_box=proposed,
+                  score=share * summary["mean_score"].to_numpy(), evidence=evidence, action="add")
+
+
+def find_suspects(dataset: CocoDataset, log: LossLog, object_pct: pd.DataFrame, overlap: PairwiseOverlap,
+                  analysis_cfg: dict) -> pd.DataFrame:
+    """All four kinds, sorted by kind then score (descending). ``object_pct`` needs loc_pct and pos_pct
+    per annotation row; ``analysis_cfg`` is the config's ``analysis`` section."""
+    epochs = late_epochs(log.epochs, float(analysis_cfg["late_fraction"]))
+    late = LossLog(log.log_dir, epochs)
+    high_pct = 100.0 * (1.0 - float(analysis_cfg["top_fraction"]))
+    loc_pct = object_pct["loc_pct"].to_numpy(dtype=np.float64)
+    pos_pct = object_pct["pos_pct"].to_numpy(dtype=np.float64)
+    frames = [
+        wrong_class_suspects(dataset, late, np.nan_to_num(pos_pct, nan=-1.0),
+                             min_share=float(analysis_cfg["wrong_class_min_epochs"]), high_pct=high_pct),
+        missing_box_suspects(dataset, log, epochs),
+        loose_box_suspects(dataset, late, np.nan_to_num(loc_pct, nan=-1.0),
+                           iou_range=tuple(analysis_cfg["loose_box_iou"]), high_pct=high_pct),
+        duplicate_box_suspects(dataset, overlap, min_iou=float(analysis_cfg["duplicate_iou"])),
+    ]
+    frames = [f for f in frames if len(f)]
+    if not frames:
+        return _frame(dataset, "", np.zeros(0, np.int64), score=np.zeros(0), evidence=[], action="")
+    out = pd.concat(frames, ignore_index=True)
+    return out.sort_values(["kind", "score"], ascending=[True, False], kind="stable").reset_index(drop=True)

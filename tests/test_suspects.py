@@ -1,0 +1,221 @@
+"""analyze_run on a hand-built run folder: planted label errors are found with the right fix, the CSVs
+follow the column contract and review.json is a COCO file pycocotools loads."""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from pycocotools.coco import COCO
+
+from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
+from detdiff.analysis.suspects import late_epochs, required_epochs
+from detdiff.analysis.tables import (CLASS_COLUMNS, IMAGE_COLUMNS, OBJECT_COLUMNS, analyze_run, review_coco,
+                                     write_tables)
+from detdiff.config import load_config
+from detdiff.data.coco import CocoDataset, build_dataset
+from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLogWriter
+
+EPOCHS = 6
+CAT, DOG, CUP = 5, 9, 17          # non-contiguous COCO category ids on purpose
+MISSING_BOX = [120.0, 110.0, 40.0, 30.0]
+
+
+def _coco() -> dict:
+    """Eight 200x160 images, four boxes each on a grid, plus one duplicate (annotation 900)."""
+    images = [{"id": 100 + i, "file_name": f"img{i}.jpg", "width": 200, "height": 160} for i in range(8)]
+    cats = [{"id": CAT, "name": "cat"}, {"id": DOG, "name": "dog"}, {"id": CUP, "name": "cup"}]
+    anns, aid = [], 1
+    for i in range(8):
+        for k in range(4):
+            x, y = 10 + 45 * k, 10 + 20 * (k % 2)
+            w, h = 30 + 3 * i, 40 + 2 * k
+            anns.append({"id": aid, "image_id": 100 + i, "category_id": (CAT, DOG, CUP)[(i + k) % 3],
+                         "bbox": [x, y, w, h], "area": w * h, "iscrowd": 0})
+            aid += 1
+    dup = dict(anns[9], id=900, bbox=[anns[9]["bbox"][0] + 0.5, *anns[9]["bbox"][1:]])   # same box, later id
+    return {"images": images, "annotations": anns + [dup], "categories": cats}
+
+
+def _write_log(rundir: Path, ds: CocoDataset, plant: dict[str, int]) -> None:
+    """Six epochs of a well-learned dataset, with the planted signals of ``plant`` (annotation rows)."""
+    rng = np.random.default_rng(0)
+    num_i, num_a = ds.num_images, ds.num_annotations
+    writer = LossLogWriter(rundir / "log", num_i, num_a)
+    wrong, loose = plant["wrong_class"], plant["loose_box"]
+    missing_image = plant["missing_image"]
+    for epoch in range(EPOCHS):
+        writer.reset(epoch)
+        obj = {name: np.full((num_a, *shape), fill, dtype=dt) for name, (dt, shape, fill) in OBJECT_FIELDS.items()}
+        obj["num_anchors"][:] = 3
+        obj["loc_sum"][:] = rng.uniform(0.1, 0.3, num_a)
+        obj["cls_sum"][:] = rng.uniform(0.1, 0.3, num_a)
+        obj["logit_label"][:] = 2.0
+        obj["logit_other"][:] = -2.0
+        obj["other_label"][:] = (ds.labels + 1) % 3
+        obj["pred_box"][:] = ds.boxes
+        obj["pred_iou"][:] = 0.92
+        obj["pred_label"][:] = ds.labels
+        obj["pred_score"][:] = 0.8
+        obj["detected"][:] = True
+        # wrong class: the detector calls the box a dog with IoU 0.85 every epoch, and the class loss is high
+        obj["cls_sum"][wrong] = 3.0
+        obj["pred_label"][wrong] = 1
+        obj["other_label"][wrong] = 1
+        obj["logit_label"][wrong], obj["logit_other"][wrong] = -1.0, 1.5
+        obj["pred_iou"][wrong] = 0.85
+        obj["detected"][wrong] = False
+        # loose box: the prediction is a tighter box inside the annotation, IoU about 0.7, high box loss
+        x, y, w, h = ds.boxes[loose]
+        obj["pred_box"][loose] = [x + 0.1 * w, y + 0.1 * h, 0.8 * w, 0.8 * h + epoch * 0.01]
+        obj["pred_iou"][loose] = 0.64
+        obj["loc_sum"][loose] = 3.0
+        image = {name: np.full(num_i, fill, dtype=dt) for name, (dt, shape, fill) in IMAGE_FIELDS.items()}
+        image["num_pos"][:] = np.bincount(ds.ann_image_index, minlength=num_i) * 3
+        image["loc_sum"][:] = np.bincount(ds.ann_image_index, weights=obj["loc_sum"], minlength=num_i)
+        image["pos_sum"][:] = np.bincount(ds.ann_image_index, weights=obj["cls_sum"], minlength=num_i)
+        image["neg_sum"][:] = rng.uniform(1.0, 2.0, num_i)
+        jitter = rng.uniform(-2, 2, 4)
+        unmatched = {"image_index": np.array([missing_image, 1 + epoch], dtype=np.int64),   # 2nd: never repeats
+                     "box": np.array([np.add(MISSING_BOX, jitter), [5, 120, 20, 20]], dtype=np.float32),
+                     "score": np.array([0.7, 0.5], dtype=np.float32), "label": np.array([2, 0], dtype=np.int32)}
+        writer.process(np.arange(num_i), image, np.arange(num_a), obj, unmatched)
+        writer.finalize()
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    rundir = tmp_path_factory.mktemp("run")
+    ds = build_dataset(_coco())
+    row = {int(a): j for j, a in enumerate(ds.ann_ids)}
+    plant = {"wrong_class": row[4], "loose_box": row[14], "duplicate": row[900], "missing_image": 5}
+    assert ds.labels[plant["wrong_class"]] == 0                     # a cat that the detector calls a dog
+    _write_log(rundir, ds, plant)
+    (rundir / "cache").mkdir()
+    pixel = np.tile(np.array([150.0, 120.0, 40.0, 0.05], dtype=np.float32), (ds.num_images, 1))
+    usable = np.ones(ds.num_images, dtype=bool)
+    usable[7] = False
+    np.savez(rundir / "cache" / "meta.npz", pixel=pixel, usable=usable, scale=np.ones(ds.num_images))
+    features = np.random.default_rng(1).normal(size=(ds.num_annotations, 6)).astype(np.float32)
+    features[0] = np.nan
+    np.save(rundir / "object_features.npy", features)
+    config = load_config()
+    tables = analyze_run(rundir, ds, config)
+    paths = write_tables(tables, rundir, ds)
+    return ds, plant, tables, paths
+
+
+def _kind(tables, kind: str):
+    return tables.suspects[tables.suspects["kind"] == kind]
+
+
+def test_wrong_class_suggests_the_persistent_other_class(run) -> None:
+    ds, plant, tables, _ = run
+    found = _kind(tables, "wrong_class")
+    assert found["annotation_id"].tolist() == [4]
+    assert found["suggested_category_id"].tolist() == [DOG]      # real COCO id, not the index
+    assert "'dog'" in found["evidence"].iloc[0] and "3 of 3 late epochs" in found["evidence"].iloc[0]
+
+
+def test_missing_box_is_the_median_of_the_persistent_detections(run) -> None:
+    ds, plant, tables, _ = run
+    found = _kind(tables, "missing_box")
+    assert len(found) == 1                                          # the one-epoch detections are not kept
+    rec = found.iloc[0]
+    assert rec["image_id"] == ds.image_ids[plant["missing_image"]] and rec["suggested_category_id"] == CUP
+    assert rec[["x", "y", "w", "h"]].isna().all() and rec[["annotation_id"]].isna().all()
+    np.testing.assert_allclose(rec[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].astype(float),
+                               MISSING_BOX, atol=3.0)
+
+
+def test_loose_box_suggests_the_tighter_predicted_box(run) -> None:
+    ds, plant, tables, _ = run
+    found = _kind(tables, "loose_box")
+    assert found["annotation_id"].tolist() == [int(ds.ann_ids[plant["loose_box"]])]
+    x, y, w, h = ds.boxes[plant["loose_box"]]
+    got = found.iloc[0][["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].astype(float).to_numpy()
+    np.testing.assert_allclose(got[:3], [x + 0.1 * w, y + 0.1 * h, 0.8 * w], atol=1e-3)
+
+
+def test_duplicate_flags_the_later_id(run) -> None:
+    _, _, tables, _ = run
+    found = _kind(tables, "duplicate_box")
+    assert found["annotation_id"].tolist() == [900] and found["duplicate_of"].tolist() == [10]
+    assert found["score"].iloc[0] > 0.9
+
+
+def test_csv_columns_follow_the_contract(run) -> None:
+    _, _, _, paths = run
+    contract = {  # DEVELOPERS.md, "Run folder" column contracts
+        "images": IMAGE_COLUMNS, "objects": OBJECT_COLUMNS, "classes": CLASS_COLUMNS,
+        "suspects": ["kind", "image_id", "annotation_id", "x", "y", "w", "h", "suggested_category_id",
+                     "suggested_x", "suggested_y", "suggested_w", "suggested_h", "score", "evidence"],
+        "causes": ["stream", "level", "descriptor", "test", "bin", "effect", "ci_low", "ci_high", "p_value",
+                   "q_value", "significant", "n", "top_rate", "base_rate"],
+    }
+    for name, columns in contract.items():
+        with open(paths[name], newline="") as fh:
+            header = next(csv.reader(fh))
+        assert header[:len(columns)] == columns, name
+
+
+def test_tables_carry_real_ids_and_pixel_descriptors(run) -> None:
+    ds, _, tables, _ = run
+    images, objects = tables.images, tables.objects
+    assert set(objects["category_id"]) == {CAT, DOG, CUP}
+    assert images["usable"].tolist() == [True] * 7 + [False]
+    assert np.isnan(images.loc[7, "blur_laplacian_var"]) and images.loc[0, "blur_laplacian_var"] == 150.0
+    assert list(PIXEL_DESCRIPTOR_NAMES) == IMAGE_COLUMNS[13:17]
+    assert np.isnan(objects.loc[0, "feature_dist"]) and np.isfinite(objects.loc[1:, "feature_dist"]).all()
+    classes = tables.classes.set_index("category_id")
+    assert classes["objects"].sum() == ds.num_annotations
+    assert classes.loc[CAT, "suspects"] >= 1                      # the wrong-class cat
+
+
+def test_review_json_loads_in_pycocotools(run) -> None:
+    ds, plant, tables, paths = run
+    coco = COCO(str(paths["review"]))                              # reference loader: pycocotools coco.py
+    suggestions = [a for a in coco.dataset["annotations"] if a["suggestion"]]
+    assert len(suggestions) == len(tables.suspects)
+    ids = [a["id"] for a in coco.dataset["annotations"]]
+    assert len(set(ids)) == len(ids) and min(a["id"] for a in suggestions) > int(ds.ann_ids.max())
+    by_kind = {a["suggestion_kind"]: a for a in suggestions}
+    assert by_kind["wrong_class"]["suggested_for"] == 4 and by_kind["wrong_class"]["category_id"] == DOG
+    assert by_kind["missing_box"]["suggested_for"] is None
+    assert set(coco.getImgIds()) == set(tables.suspects["image_id"].tolist())
+    json.dumps(review_coco(tables, ds), allow_nan=False)           # strict JSON: no NaN anywhere
+
+
+def test_late_epochs_are_the_last_fraction() -> None:
+    assert late_epochs([0, 1, 2, 3], 0.5) == [2, 3]
+    assert late_epochs([0, 1, 2], 0.5) == [1, 2]
+    assert late_epochs([7], 0.1) == [7]
+    with pytest.raises(ValueError, match="late_fraction"):
+        late_epochs([0, 1], 0.0)
+
+
+def test_run_without_cache_or_features(tmp_path) -> None:
+    ds = build_dataset(_coco())
+    row = {int(a): j for j, a in enumerate(ds.ann_ids)}
+    _write_log(tmp_path, ds, {"wrong_class": row[4], "loose_box": row[14], "missing_image": 5})
+    tables = analyze_run(tmp_path, ds, load_config())
+    assert tables.images["blur_laplacian_var"].isna().all() and tables.images["usable"].all()  # all covered
+    assert tables.objects[["feature_dist", "map_x", "map_y"]].isna().all().all()
+    assert set(tables.suspects["kind"]) == {"wrong_class", "missing_box", "loose_box", "duplicate_box"}
+
+
+def test_persistent_needs_half_and_at_least_two_epochs() -> None:
+    assert required_epochs(np.array([1, 2, 3, 4, 8]), 0.5).tolist() == [1, 2, 2, 2, 4]
+    assert required_epochs(np.array([0, 4]), 0.75).tolist() == [0, 3]
+
+
+def test_features_of_another_dataset_are_refused(tmp_path) -> None:
+    ds = build_dataset(_coco())
+    row = {int(a): j for j, a in enumerate(ds.ann_ids)}
+    _write_log(tmp_path, ds, {"wrong_class": row[4], "loose_box": row[14], "missing_image": 5})
+    np.save(tmp_path / "object_features.npy", np.zeros((5, 3), np.float32))
+    with pytest.raises(ValueError, match=r"object_features\.npy: object features have shape \(5, 3\)"):
+        analyze_run(tmp_path, ds, load_config())

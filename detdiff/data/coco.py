@@ -135,8 +135,21 @@ class CocoDataset:
         return {"images": images, "annotations": anns, "categories": cats}
 
 
+MAX_IMAGE_SIDE = 2 ** 31 - 1   # declared width/height above this are refused (int32 limit of image libraries)
+
+
 def _finite_number(value: Any) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+    if not isinstance(value, (int, float)) or isinstance(value, bool):
+        return False
+    try:
+        return math.isfinite(value)
+    except OverflowError:          # an int too large for a float
+        return False
+
+
+def _int_id(value: Any) -> bool:
+    """An integer id (not a bool) that fits int64."""
+    return isinstance(value, int) and not isinstance(value, bool) and -(2 ** 63) <= value < 2 ** 63
 
 
 def build_dataset(data: dict[str, Any], *, ann_path: str | Path | None = None,
@@ -154,13 +167,13 @@ def build_dataset(data: dict[str, Any], *, ann_path: str | Path | None = None,
         if not isinstance(rec, dict):
             continue
         iid, name, w, h = rec.get("id"), rec.get("file_name"), rec.get("width"), rec.get("height")
-        if (isinstance(iid, int) and not isinstance(iid, bool) and isinstance(name, str) and name
-                and _finite_number(w) and _finite_number(h) and w > 0 and h > 0
+        if (_int_id(iid) and isinstance(name, str) and name
+                and _finite_number(w) and _finite_number(h) and 1 <= w <= MAX_IMAGE_SIDE and 1 <= h <= MAX_IMAGE_SIDE
                 and iid not in images and iid not in drop_image_ids):
             images[iid] = (name, int(w), int(h))
     cats: dict[int, tuple[str, str]] = {}
     for rec in data.get("categories") or []:
-        if isinstance(rec, dict) and isinstance(rec.get("id"), int) and not isinstance(rec.get("id"), bool):
+        if isinstance(rec, dict) and _int_id(rec.get("id")):
             if rec["id"] not in cats:
                 cats[rec["id"]] = (str(rec.get("name", rec["id"])), str(rec.get("supercategory", "")))
     image_ids = np.array(sorted(images), dtype=np.int64)
@@ -174,9 +187,10 @@ def build_dataset(data: dict[str, Any], *, ann_path: str | Path | None = None,
         if not isinstance(rec, dict):
             continue
         aid, iid, cid, bbox = rec.get("id"), rec.get("image_id"), rec.get("category_id"), rec.get("bbox")
-        if not (isinstance(aid, int) and not isinstance(aid, bool)) or aid in seen or aid in drop_ann_ids:
+        if not _int_id(aid) or aid in seen or aid in drop_ann_ids:
             continue
-        if iid not in image_row or cid not in cat_row or not isinstance(bbox, list) or len(bbox) != 4:
+        if not (_int_id(iid) and iid in image_row and _int_id(cid) and cid in cat_row) \
+                or not isinstance(bbox, list) or len(bbox) != 4:
             continue
         if not all(_finite_number(v) for v in bbox) or bbox[2] <= 0 or bbox[3] <= 0:
             continue
@@ -187,15 +201,16 @@ def build_dataset(data: dict[str, Any], *, ann_path: str | Path | None = None,
         seen.add(aid)
         rows.append((image_row[iid], aid, cat_row[cid], *map(float, bbox), area, bool(rec.get("iscrowd", 0))))
     rows.sort(key=lambda r: (r[0], r[1]))
-    arr = np.array([r[:8] for r in rows], dtype=np.float64).reshape(-1, 8)
+    index = np.array([r[:3] for r in rows], dtype=np.int64).reshape(-1, 3)     # ids stay exact above 2**53
+    arr = np.array([r[3:8] for r in rows], dtype=np.float64).reshape(-1, 5)
     return CocoDataset(
         image_ids=image_ids, file_names=[images[int(i)][0] for i in image_ids],
         widths=np.array([images[int(i)][1] for i in image_ids], dtype=np.int64),
         heights=np.array([images[int(i)][2] for i in image_ids], dtype=np.int64),
         category_ids=category_ids, category_names=[cats[int(c)][0] for c in category_ids],
         supercategories=[cats[int(c)][1] for c in category_ids],
-        ann_ids=arr[:, 1].astype(np.int64), ann_image_index=arr[:, 0].astype(np.int64),
-        labels=arr[:, 2].astype(np.int64), boxes=arr[:, 3:7].copy(), areas=arr[:, 7].copy(),
+        ann_ids=index[:, 1].copy(), ann_image_index=index[:, 0].copy(),
+        labels=index[:, 2].copy(), boxes=arr[:, :4].copy(), areas=arr[:, 4].copy(),
         iscrowd=np.array([r[8] for r in rows], dtype=bool),
         ann_path=Path(ann_path) if ann_path else None, images_dir=Path(images_dir) if images_dir else None)
 

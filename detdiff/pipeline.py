@@ -61,7 +61,7 @@ def ingest(annotations: str | Path, images_dir: str | Path, rundir: Path, config
 
     data = read_coco_json(annotations)
     report = lint_coco(annotations, images_dir, verify_images=verify_images, data=data)
-    write_json_atomic(rundir / "findings.json", report.to_json())
+    write_json_atomic(rundir / "findings.json", report.to_json(max_per_code=1000))
     dataset = build_dataset(data, ann_path=Path(annotations).resolve(), images_dir=Path(images_dir).resolve(),
                             drop_image_ids=report.error_image_ids(), drop_ann_ids=report.error_annotation_ids(),
                             min_box_side=float(config["data"]["min_box_side"]))

@@ -19,11 +19,12 @@ def _expected_errors() -> tuple[type[BaseException], ...]:
     from detdiff.pipeline import RunFolderError
 
     errors: list[type[BaseException]] = [ConfigError, CocoFormatError, UnsafeImagePath, RunFolderError,
-                                         FileNotFoundError, PermissionError]
+                                         FileNotFoundError, PermissionError, NotADirectoryError]
     try:
+        from detdiff.data.image_cache import InsufficientSpaceError
         from detdiff.train.loop import TrainingDiverged
 
-        errors.append(TrainingDiverged)
+        errors += [TrainingDiverged, InsufficientSpaceError]
     except ImportError:
         pass
     return tuple(errors)

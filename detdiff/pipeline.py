@@ -128,6 +128,30 @@ def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dic
     return config
 
 
+def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path, config: dict, resume: bool,
+                  progress: bool, timings: dict[str, float]):
+    """Main process only: folder, config, lint + ingest, image cache (each result written to ``rundir``)."""
+    from detdiff.data.image_cache import build_image_cache
+
+    t0 = time.perf_counter()
+    prepare_rundir(rundir)
+    if not resume:
+        for stale in ("log", "checkpoint.pt"):
+            target = rundir / stale
+            if target.is_dir():
+                shutil.rmtree(target)
+            elif target.exists():
+                target.unlink()
+    save_config(config, rundir / "config.yaml")
+    dataset = ingest(annotations, images_dir, rundir, config)
+    timings["check_s"] = time.perf_counter() - t0
+    cache = build_image_cache(dataset, rundir / "cache", int(config["data"]["image_size"]),
+                              max_pixels=int(config["data"]["max_pixels"]), progress=progress,
+                              pixel_stats=bool(config["analysis"]["pixel_descriptors"]))
+    timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"]
+    return dataset, cache
+
+
 def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Path, *,
               config_path: str | Path | None = None, overrides: dict | None = None, resume: bool = False,
               progress: bool = True, make_report: bool = True, top: int | None = None,
@@ -135,34 +159,29 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     """Run the whole audit into ``rundir`` and return where the results are.
 
     With ``torchrun`` every process calls this; only the main process lints, builds the cache,
-    evaluates, analyses and reports, the others train their shard.
+    evaluates, analyses and reports, the others train their shard. A failure on the main process
+    before training is passed to the others, so no process waits forever.
     """
-    from detdiff.data.image_cache import ImageCache, build_image_cache
-    from detdiff.train.distributed import barrier, init_distributed
+    from detdiff.data.image_cache import ImageCache
+    from detdiff.train.distributed import barrier, broadcast_object, init_distributed, shutdown
     from detdiff.train.evaluate import final_pass
     from detdiff.train.loop import train_and_log
 
     rundir = Path(rundir)
-    overrides = overrides or {}
-    config = _resolve_config(rundir, config_path, overrides, resume)
+    config = _resolve_config(rundir, config_path, overrides or {}, resume)
     dist = init_distributed(config["train"]["device"])
     timings: dict[str, float] = {}
-    t0 = time.perf_counter()
+    failure: BaseException | None = None
     if dist.is_main:
-        prepare_rundir(rundir)
-        if not resume:
-            for stale in ("log", "checkpoint.pt"):
-                target = rundir / stale
-                if target.is_dir():
-                    shutil.rmtree(target)
-                elif target.exists():
-                    target.unlink()
-        save_config(config, rundir / "config.yaml")
-        dataset = ingest(annotations, images_dir, rundir, config)
-        timings["check_s"] = time.perf_counter() - t0
-        cache = build_image_cache(dataset, rundir / "cache", int(config["data"]["image_size"]),
-                                  max_pixels=int(config["data"]["max_pixels"]), progress=progress)
-        timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"]
+        try:
+            dataset, cache = _prepare_main(annotations, images_dir, rundir, config, resume, progress, timings)
+        except BaseException as exc:            # re-raised below, after the other processes are told
+            failure = exc
+    message = broadcast_object(None if failure is None else str(failure), dist)
+    if failure is not None:
+        raise failure
+    if message is not None:
+        raise RunFolderError(f"main process stopped before training: {message}")
     barrier()
     if not dist.is_main:
         dataset = load_saved_dataset(rundir / DATASET_FILE)
@@ -170,6 +189,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     t1 = time.perf_counter()
     result = train_and_log(dataset, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
     timings["train_s"] = time.perf_counter() - t1
+    shutdown()                                   # evaluation, analysis and report run on the main process only
     if not dist.is_main:
         return AuditResult(rundir, None, {}, "")
 

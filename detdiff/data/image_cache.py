@@ -1,0 +1,381 @@
+"""Decode every image once into the training view: a uint8 memmap that every epoch reads without decoding.
+
+Training view (DEVELOPERS.md "Training view"): each image is letterboxed to ``S x S`` with
+``scale = S / max(declared width, declared height)``, resized, placed at the top-left corner and padded
+with grey 114. A COCO box maps to the view as ``xyxy_view = xyxy_orig * scale``. The declared size (the
+COCO ``width`` / ``height``, i.e. the displayed image) sets the geometry, so boxes always land where the
+annotation says, even when the file on disk has another size (that case is recorded as a warning).
+
+Files in ``cache_dir``::
+
+    images.u8        uint8 [I, S, S, 3] RGB, raw memmap (shape in meta.npz)
+    meta.npz         scale float64 [I], usable bool [I], pixel float32 [I, 4] (PIXEL_DESCRIPTOR_NAMES,
+                     NaN where unusable), image_ids int64 [I], image_size int
+    problems.json    [{index, image_id, file_name, reason, usable, level}]: level "error" = unusable
+                     (not trained on), "warning" = usable with a note (e.g. size differs from the file)
+    fingerprint.json written last: its presence marks a complete cache; it names the dataset, the view
+                     size and the image files' sizes and times, so a cache is reused only for the same input
+
+Everything is built under temporary names and renamed into place, fingerprint last, so a killed build
+never leaves a cache that looks complete. Pixel descriptors (blur, brightness, contrast, clutter) are
+computed on the full-resolution pixels while they are in memory, so each image is read once overall.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import multiprocessing
+import os
+import shutil
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import cv2
+import numpy as np
+from PIL import Image, ImageOps, UnidentifiedImageError
+from tqdm import tqdm
+
+from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
+from detdiff.data.coco import CocoDataset, UnsafeImagePath, resolve_image_path
+
+PAD_VALUE = 114
+CACHE_FORMAT_VERSION = 1
+IMAGES_FILE = "images.u8"
+META_FILE = "meta.npz"
+PROBLEMS_FILE = "problems.json"
+FINGERPRINT_FILE = "fingerprint.json"
+
+
+class InsufficientSpaceError(OSError):
+    """A folder that must be written is not writable or lacks room for what will be written there."""
+
+
+def check_folder_room(folder: str | Path, needed_bytes: int, what: str) -> None:
+    """Create ``folder`` if needed and make sure a file can be written there and ``needed_bytes`` fit.
+
+    Checked by writing a probe file (permission bits alone say nothing when running as root).
+    """
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        probe = folder / f".write-probe-{os.getpid()}"
+        probe.write_bytes(b"0")
+        probe.unlink()
+    except OSError as exc:
+        raise InsufficientSpaceError(f"{folder}: cannot write {what} there ({exc.strerror or exc}); "
+                                     f"choose another output folder") from exc
+    free = shutil.disk_usage(folder).free
+    if free < needed_bytes:
+        raise InsufficientSpaceError(
+            f"{folder}: {what} needs about {needed_bytes / 1e6:.1f} MB but only {free / 1e6:.1f} MB are free; "
+            f"free some space, choose another output folder or lower data.image_size")
+
+
+def cache_bytes(num_images: int, image_size: int) -> int:
+    """Bytes of ``images.u8`` for ``num_images`` views of side ``image_size``."""
+    return int(num_images) * int(image_size) ** 2 * 3
+
+
+@dataclass
+class ImageCache:
+    """The decoded training view of a dataset (see module docstring); rows are dataset image indices."""
+
+    cache_dir: Path
+    images: np.memmap          # uint8 [I, S, S, 3], RGB, read-only
+    scale: np.ndarray          # float64 [I]: view px per original px
+    usable: np.ndarray         # bool [I]: decoded and trained on
+    pixel: np.ndarray          # float32 [I, 4]: PIXEL_DESCRIPTOR_NAMES, NaN where unusable
+    problems: list[dict[str, Any]]
+    image_size: int
+
+    @property
+    def num_images(self) -> int:
+        return int(self.images.shape[0])
+
+    @property
+    def usable_indices(self) -> np.ndarray:
+        """Dataset image indices that can be trained on, ascending (int64)."""
+        return np.flatnonzero(self.usable).astype(np.int64)
+
+    @classmethod
+    def open(cls, cache_dir: str | Path) -> ImageCache:
+        """Open a complete cache; raise ``FileNotFoundError`` if it is missing or was never finished."""
+        cache_dir = Path(cache_dir)
+        if not (cache_dir / FINGERPRINT_FILE).is_file():
+            raise FileNotFoundError(f"{cache_dir}: no complete image cache here ({FINGERPRINT_FILE} missing); "
+                                    f"build it with build_image_cache")
+        with np.load(cache_dir / META_FILE) as meta:
+            scale, usable, pixel = meta["scale"], meta["usable"], meta["pixel"]
+            size = int(meta["image_size"])
+        shape = (len(scale), size, size, 3)
+        expected = cache_bytes(len(scale), size)
+        actual = (cache_dir / IMAGES_FILE).stat().st_size
+        if actual != expected:
+            raise FileNotFoundError(f"{cache_dir / IMAGES_FILE}: {actual} bytes, expected {expected} for {shape}; "
+                                    f"the cache is damaged, delete {cache_dir} and rebuild")
+        images = (np.memmap(cache_dir / IMAGES_FILE, dtype=np.uint8, mode="r", shape=shape) if expected
+                  else np.zeros(shape, dtype=np.uint8))
+        problems = json.loads((cache_dir / PROBLEMS_FILE).read_text())
+        return cls(cache_dir, images, scale, usable, pixel, problems, size)
+
+
+def _image_root(dataset: CocoDataset) -> Path:
+    return dataset.images_dir if dataset.images_dir is not None else Path(".")
+
+
+def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pixels: bool) -> dict[str, Any]:
+    """What the cache depends on: dataset records, boxes (for clutter), view size, and the files' stat."""
+    root = _image_root(dataset).resolve()
+    digest = hashlib.sha256()
+    for arr in (dataset.image_ids, dataset.widths, dataset.heights, dataset.ann_image_index, dataset.boxes):
+        digest.update(np.ascontiguousarray(arr).tobytes())
+    digest.update("\0".join(dataset.file_names).encode("utf-8", "surrogatepass"))
+    stats = np.full((dataset.num_images, 2), -1, dtype=np.int64)
+    for i, name in enumerate(dataset.file_names):
+        try:
+            st = os.stat(root / name)
+            stats[i] = (st.st_size, st.st_mtime_ns)
+        except (OSError, ValueError):
+            pass
+    digest.update(stats.tobytes())
+    return {"version": CACHE_FORMAT_VERSION, "image_size": int(image_size), "max_pixels": int(max_pixels),
+            "pixel_descriptors": bool(with_pixels), "num_images": int(dataset.num_images),
+            "image_root": str(root), "digest": digest.hexdigest()}
+
+
+def _to_rgb8(im: Image.Image) -> np.ndarray:
+    """Any PIL mode -> uint8 RGB ``[H, W, 3]``.
+
+    Alpha is composited over the padding grey (transparent areas look like padding, not like black);
+    integer images deeper than 8 bits are scaled from their 16-bit range (``/ 257``: 65535 -> 255);
+    float images are taken as 0..1 when their maximum is at most 1, else clipped to 0..255.
+    """
+    mode = im.mode
+    if mode in ("I;16", "I;16L", "I;16B", "I;16N", "I"):
+        arr = np.asarray(im).astype(np.float64)
+        if mode == "I" and arr.max(initial=0) <= 255:
+            gray = arr
+        else:
+            gray = arr / 257.0
+        gray = np.clip(np.rint(gray), 0, 255).astype(np.uint8)
+        return np.repeat(gray[:, :, None], 3, axis=2)
+    if mode == "F":
+        arr = np.asarray(im).astype(np.float64)
+        finite_max = np.nanmax(arr) if arr.size else 0.0
+        gray = arr * 255.0 if finite_max <= 1.0 else arr
+        gray = np.clip(np.nan_to_num(np.rint(gray)), 0, 255).astype(np.uint8)
+        return np.repeat(gray[:, :, None], 3, axis=2)
+    has_alpha = mode in ("RGBA", "LA", "PA", "La", "RGBa") or (mode == "P" and "transparency" in im.info)
+    if has_alpha:
+        rgba = np.asarray(im.convert("RGBA")).astype(np.float32)
+        alpha = rgba[:, :, 3:4] / 255.0
+        rgb = rgba[:, :, :3] * alpha + PAD_VALUE * (1.0 - alpha)
+        return np.clip(np.rint(rgb), 0, 255).astype(np.uint8)
+    return np.asarray(im.convert("RGB"))
+
+
+class _Refused(Exception):
+    """An image that cannot be used; the message is the reason recorded in problems.json."""
+
+
+def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
+    """Read one file into uint8 RGB at full resolution, EXIF orientation applied; raise ``_Refused``."""
+    try:
+        size = path.stat().st_size
+    except FileNotFoundError:
+        raise _Refused("file not found") from None
+    except OSError as exc:
+        raise _Refused(f"cannot read file: {exc.strerror or exc}") from None
+    if size == 0:
+        raise _Refused("empty file (0 bytes)")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            with Image.open(path) as im:
+                w, h = im.size                      # from the header; nothing is decoded yet
+                if w * h > max_pixels:
+                    raise _Refused(f"{w}x{h} = {w * h} pixels exceeds data.max_pixels = {max_pixels}; "
+                                   f"refused before decoding")
+                im.load()
+                im = ImageOps.exif_transpose(im)    # COCO sizes are of the displayed (rotated) image
+                return _to_rgb8(im)
+    except _Refused:
+        raise
+    except Image.DecompressionBombError as exc:
+        raise _Refused(f"refused before decoding by Pillow's decompression-bomb limit ({exc})") from None
+    except UnidentifiedImageError:
+        raise _Refused("not an image (no known image format)") from None
+    except (OSError, SyntaxError, ValueError, TypeError, EOFError, MemoryError) as exc:
+        raise _Refused(f"corrupt or truncated image ({type(exc).__name__}: {exc})") from None
+
+
+def letterbox(image_rgb: np.ndarray, declared_w: int, declared_h: int, image_size: int) -> tuple[np.ndarray, float]:
+    """Resize ``image_rgb [h, w, 3]`` to the declared size's view and pad to ``[S, S, 3]``; returns (view, scale)."""
+    scale = image_size / max(declared_w, declared_h)
+    new_w = min(image_size, max(1, int(round(declared_w * scale))))
+    new_h = min(image_size, max(1, int(round(declared_h * scale))))
+    h, w = image_rgb.shape[:2]
+    shrinking = new_w * new_h < w * h
+    resized = cv2.resize(image_rgb, (new_w, new_h), interpolation=cv2.INTER_AREA if shrinking else cv2.INTER_LINEAR)
+    view = np.full((image_size, image_size, 3), PAD_VALUE, dtype=np.uint8)
+    view[:new_h, :new_w] = resized
+    return view, scale
+
+
+# Per-process state of the decode workers (set by _init_worker; the parent sets it for in-process decoding).
+_WORKER: dict[str, Any] = {}
+
+
+def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool) -> None:
+    cv2.setNumThreads(1)
+    _WORKER["images"] = np.memmap(images_path, dtype=np.uint8, mode="r+", shape=shape)
+    _WORKER["max_pixels"] = max_pixels
+    _WORKER["with_pixels"] = with_pixels
+
+
+def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray]) -> dict[str, Any]:
+    """Decode image ``index`` into row ``index`` of the memmap; return its scale, descriptors and notes."""
+    index, path, refusal, declared_w, declared_h, boxes_xywh = task
+    images = _WORKER["images"]
+    size = images.shape[1]
+    out: dict[str, Any] = {"index": index, "scale": size / max(declared_w, declared_h), "usable": False,
+                           "pixel": np.full(len(PIXEL_DESCRIPTOR_NAMES), np.nan, dtype=np.float32), "notes": []}
+    try:
+        if refusal is not None:
+            raise _Refused(refusal)
+        full = _decode_full(Path(path), _WORKER["max_pixels"])
+    except _Refused as exc:
+        images[index] = PAD_VALUE
+        out["notes"].append(("error", str(exc)))
+        return out
+    h, w = full.shape[:2]
+    if (w, h) != (declared_w, declared_h):
+        hint = (" (the declared size is this one turned by 90 degrees: was the EXIF orientation ignored "
+                "when it was annotated?)" if (h, w) == (declared_w, declared_h) else "")
+        out["notes"].append(("warning", f"decoded size {w}x{h} differs from the declared {declared_w}x{declared_h}; "
+                                        f"resized to the declared size{hint}"))
+    try:
+        view, scale = letterbox(full, declared_w, declared_h, size)
+        if _WORKER["with_pixels"]:
+            boxes_here = np.asarray(boxes_xywh, dtype=np.float64) * np.array([w / declared_w, h / declared_h] * 2)
+            out["pixel"] = pixel_descriptors(full, boxes_here)
+    except (cv2.error, ValueError, MemoryError) as exc:
+        images[index] = PAD_VALUE
+        out["notes"] = [("error", f"decoded but could not be resized or measured ({type(exc).__name__}: {exc})")]
+        return out
+    images[index] = view
+    out["scale"], out["usable"] = scale, True
+    return out
+
+
+def _pool_context() -> multiprocessing.context.BaseContext:
+    """``fork`` where the OS has it: workers need no ``if __name__ == "__main__"`` guard in the caller's script
+    and start in milliseconds; they only run PIL/OpenCV (one OpenCV thread each), never torch."""
+    methods = multiprocessing.get_all_start_methods()
+    return multiprocessing.get_context("fork" if "fork" in methods else "spawn")
+
+
+def _tasks(dataset: CocoDataset):
+    """One task per image: path (or the reason it is refused), declared size and its boxes."""
+    root = _image_root(dataset)
+    for i in range(dataset.num_images):
+        refusal, path = None, None
+        try:
+            path = str(resolve_image_path(root, dataset.file_names[i]))
+        except UnsafeImagePath as exc:
+            refusal = f"unsafe file_name: {exc}"
+        except (OSError, ValueError) as exc:
+            refusal = f"unreadable file_name: {exc}"
+        yield (i, path, refusal, int(dataset.widths[i]), int(dataset.heights[i]), dataset.boxes[dataset.ann_slice(i)])
+
+
+def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
+                      progress: bool = True, workers: int = 2, pixel_stats: bool = True) -> ImageCache:
+    """Decode every image of ``dataset`` once into ``cache_dir`` (see module docstring) and open it.
+
+    A complete cache for the same dataset, files and view size is reused as is. Images that cannot be
+    used (corrupt, empty, not an image, too many pixels, unsafe path) are marked unusable with a reason
+    in ``problems.json`` and the build goes on. ``workers`` > 1 decodes in a process pool of that size.
+    ``pixel_stats`` = False skips the descriptors (``analysis.pixel_descriptors`` off): ``pixel`` is NaN.
+    """
+    cache_dir = Path(cache_dir)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats)
+    fp_path = cache_dir / FINGERPRINT_FILE
+    if fp_path.is_file():
+        try:
+            if json.loads(fp_path.read_text()) == fingerprint:
+                return ImageCache.open(cache_dir)
+        except (OSError, ValueError, KeyError, FileNotFoundError):
+            pass
+    outdated = cache_dir / IMAGES_FILE
+    reclaimable = outdated.stat().st_size if outdated.is_file() else 0
+    check_folder_room(cache_dir, max(0, cache_bytes(dataset.num_images, image_size) - reclaimable) + 1_000_000,
+                      "the image cache")
+    fp_path.unlink(missing_ok=True)                       # from here on, no complete cache is claimed
+    outdated.unlink(missing_ok=True)                      # an outdated cache only takes room
+
+    num = dataset.num_images
+    shape = (num, image_size, image_size, 3)
+    tmp_tag = f".tmp-{os.getpid()}"
+    images_tmp = cache_dir / (IMAGES_FILE + tmp_tag)
+    if num:
+        np.memmap(images_tmp, dtype=np.uint8, mode="w+", shape=shape).flush()
+    else:
+        images_tmp.write_bytes(b"")
+
+    scale = np.full(num, np.nan, dtype=np.float64)
+    usable = np.zeros(num, dtype=bool)
+    pixel = np.full((num, len(PIXEL_DESCRIPTOR_NAMES)), np.nan, dtype=np.float32)
+    problems: list[dict[str, Any]] = []
+    init_args = (str(images_tmp), shape, int(max_pixels), bool(pixel_stats))
+    bar = tqdm(total=num, desc="decode images", unit="img", disable=not progress, leave=False)
+
+    def collect(result: dict[str, Any]) -> None:
+        i = result["index"]
+        scale[i], usable[i], pixel[i] = result["scale"], result["usable"], result["pixel"]
+        for level, reason in result["notes"]:
+            problems.append({"index": int(i), "image_id": int(dataset.image_ids[i]),
+                             "file_name": dataset.file_names[i], "reason": reason,
+                             "usable": level != "error", "level": level})
+        bar.update(1)
+
+    try:
+        if num == 0:
+            pass
+        elif workers <= 1 or num < 4 * workers:
+            saved = dict(_WORKER)
+            try:
+                _init_worker(*init_args)
+                for task in _tasks(dataset):
+                    collect(_decode_task(task))
+                _WORKER["images"].flush()
+            finally:
+                _WORKER.clear()
+                _WORKER.update(saved)
+        else:
+            with _pool_context().Pool(workers, _init_worker, init_args) as pool:
+                for result in pool.imap_unordered(_decode_task, _tasks(dataset), chunksize=8):
+                    collect(result)
+    except BaseException:
+        images_tmp.unlink(missing_ok=True)
+        raise
+    finally:
+        bar.close()
+
+    problems.sort(key=lambda p: (p["index"], p["level"]))
+    meta_tmp = cache_dir / f"meta{tmp_tag}.npz"
+    with open(meta_tmp, "wb") as fh:
+        np.savez(fh, scale=scale, usable=usable, pixel=pixel, image_ids=dataset.image_ids,
+                 image_size=np.int64(image_size))
+    problems_tmp = cache_dir / (PROBLEMS_FILE + tmp_tag)
+    problems_tmp.write_text(json.dumps(problems, indent=1))
+    os.replace(images_tmp, cache_dir / IMAGES_FILE)
+    os.replace(meta_tmp, cache_dir / META_FILE)
+    os.replace(problems_tmp, cache_dir / PROBLEMS_FILE)
+    fp_tmp = cache_dir / (FINGERPRINT_FILE + tmp_tag)
+    fp_tmp.write_text(json.dumps(fingerprint, indent=1))
+    os.replace(fp_tmp, fp_path)
+    return ImageCache.open(cache_dir)

@@ -1,0 +1,203 @@
+"""How good is the measuring instrument? One eval pass of the trained detector, scored by pycocotools.
+
+:func:`final_pass` runs the detector once in eval mode over the usable images of the cache and writes::
+
+    RUNDIR/detections.json      COCO results format: [{image_id, category_id, bbox [x, y, w, h] original px, score}]
+    RUNDIR/object_features.npy  float32 [A, D]: pooled pyramid features of every annotation (NaN rows for
+                                crowd annotations and annotations of unusable images)
+    RUNDIR/metrics.json         COCOeval 'bbox' summary (see :func:`coco_metrics`) + whether to trust the scores
+
+AP is never re-implemented here: pycocotools' ``COCOeval`` is the reference (cocodataset/cocoapi,
+``PythonAPI/pycocotools/cocoeval.py``); its prints are silenced and its precision array is read directly.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import copy
+import io
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from pycocotools.coco import COCO
+from pycocotools.cocoeval import COCOeval
+
+from detdiff.data.coco import CocoDataset
+from detdiff.data.image_cache import ImageCache
+from detdiff.model.postprocess import pooled_object_features, postprocess_detections
+from detdiff.train.checkpoint import unwrap_model
+
+#: COCOeval area ranges in the order of its ``params.areaRngLbl``: all, small, medium, large.
+_AREA_INDEX = {"": 0, "_small": 1, "_medium": 2, "_large": 3}
+
+
+def _mean_valid(values: np.ndarray) -> float | None:
+    """Mean over entries > -1 (COCOeval writes -1 where a category/area has no ground truth); None if none."""
+    valid = values[values > -1]
+    return float(valid.mean()) if valid.size else None
+
+
+def _results_coco(gt: COCO, detections: list[dict[str, Any]]) -> COCO:
+    """``gt.loadRes(detections)``; with no detection at all an empty results set (loadRes cannot take [])."""
+    if detections:
+        return gt.loadRes(copy.deepcopy(detections))
+    empty = COCO()
+    empty.dataset = {"images": list(gt.dataset["images"]), "categories": copy.deepcopy(gt.dataset["categories"]),
+                     "annotations": []}
+    empty.createIndex()
+    return empty
+
+
+def coco_metrics(gt_dict: dict[str, Any], detections: list[dict[str, Any]], *, max_dets: int = 100,
+                 min_ap50: float = 0.0, image_ids: list[int] | None = None) -> dict[str, Any]:
+    """COCO 'bbox' AP of ``detections`` (results format) against ``gt_dict`` (a COCO dict), via pycocotools.
+
+    Returns ``AP, AP50, AP75, AP_small, AP_medium, AP_large, AP50_small, AP50_medium, AP50_large`` (None where
+    no ground truth falls in that area range), ``per_category {category_id (str): AP50 or None}``,
+    ``max_dets``, ``trustworthy`` (AP50 >= ``min_ap50``), ``min_ap50`` and ``warning`` (a sentence or None).
+
+    Annotation ids are renumbered 1..A in a copy first: pycocotools treats id 0 as "unmatched" and would
+    match it more than once. ``max_dets`` replaces COCOeval's last maxDets (100), which must be raised when
+    images hold more than 100 boxes. ``image_ids`` restricts the evaluation to those images (COCOeval
+    ``params.imgIds``), e.g. the usable ones: an image that was never decoded has no detections by design.
+    """
+    gt_dict = copy.deepcopy(gt_dict)
+    for new_id, ann in enumerate(gt_dict["annotations"], start=1):
+        ann["id"] = new_id
+    with contextlib.redirect_stdout(io.StringIO()):
+        gt = COCO()
+        gt.dataset = gt_dict
+        gt.createIndex()
+        dt = _results_coco(gt, detections)
+        ev = COCOeval(gt, dt, "bbox")
+        ev.params.maxDets = [1, 10, int(max_dets)]
+        if image_ids is not None:
+            ev.params.imgIds = sorted(int(i) for i in image_ids)
+        ev.evaluate()
+        ev.accumulate()
+    precision = ev.eval["precision"]                 # [T iou, R recall, K category, A area, M maxDets]
+    iou_50 = int(np.argmin(np.abs(ev.params.iouThrs - 0.5)))
+    iou_75 = int(np.argmin(np.abs(ev.params.iouThrs - 0.75)))
+    metrics: dict[str, Any] = {}
+    for suffix, a in _AREA_INDEX.items():
+        metrics[f"AP{suffix}"] = _mean_valid(precision[:, :, :, a, -1])
+    metrics["AP50"] = _mean_valid(precision[iou_50, :, :, 0, -1])
+    metrics["AP75"] = _mean_valid(precision[iou_75, :, :, 0, -1])
+    for suffix in ("_small", "_medium", "_large"):
+        metrics[f"AP50{suffix}"] = _mean_valid(precision[iou_50, :, :, _AREA_INDEX[suffix], -1])
+    metrics["per_category"] = {str(cat_id): _mean_valid(precision[iou_50, :, k, 0, -1])
+                               for k, cat_id in enumerate(ev.params.catIds)}
+    order = ["AP", "AP50", "AP75", "AP_small", "AP_medium", "AP_large", "AP50_small", "AP50_medium", "AP50_large"]
+    metrics = {k: metrics[k] for k in order} | {"per_category": metrics["per_category"]}
+    ap50 = metrics["AP50"] if metrics["AP50"] is not None else 0.0
+    metrics["max_dets"] = int(max_dets)
+    metrics["num_detections"] = len(detections)
+    metrics["num_images"] = len(ev.params.imgIds)
+    metrics["trustworthy"] = bool(ap50 >= min_ap50)
+    metrics["min_ap50"] = float(min_ap50)
+    metrics["warning"] = None if metrics["trustworthy"] else (
+        f"The detector trained on this dataset reached only AP50 {ap50:.3f} (below eval.min_ap50 = {min_ap50}), "
+        f"so its losses measure the detector's weakness as much as the data: treat the difficulty scores and "
+        f"suspects as rough, and train longer (train.epochs) or larger (data.image_size, model.width).")
+    return metrics
+
+
+def write_json_atomic(path: str | Path, data: Any) -> Path:
+    """Write ``data`` as JSON through a temporary file and ``os.replace`` (never a half-written file)."""
+    path = Path(path)
+    tmp = path.with_name(f"{path.name}.tmp-{os.getpid()}")
+    tmp.write_text(json.dumps(data, indent=1))
+    os.replace(tmp, path)
+    return path
+
+
+def _orig_xywh(boxes_view: np.ndarray, scale: np.ndarray, width: np.ndarray, height: np.ndarray) -> np.ndarray:
+    """``[n, 4]`` xyxy view px -> xywh original px, clipped to the declared image (per-row ``scale``, size ``[n]``)."""
+    b = boxes_view / scale[:, None]
+    x1 = np.clip(b[:, 0], 0, width)
+    y1 = np.clip(b[:, 1], 0, height)
+    x2 = np.clip(b[:, 2], 0, width)
+    y2 = np.clip(b[:, 3], 0, height)
+    return np.stack([x1, y1, x2 - x1, y2 - y1], axis=1)
+
+
+@torch.no_grad()
+def final_pass(model: torch.nn.Module, dataset: CocoDataset, cache: ImageCache, config: dict[str, Any],
+               rundir: str | Path, *, batch_size: int | None = None) -> dict[str, Any]:
+    """Eval-mode pass over the usable images: write detections, object features and COCOeval metrics.
+
+    Returns the metrics dict written to ``RUNDIR/metrics.json`` (see :func:`coco_metrics`). Detection boxes are
+    mapped back to original pixels (``/ scale``) and clipped to the declared image; padding is not image.
+    """
+    rundir = Path(rundir)
+    rundir.mkdir(parents=True, exist_ok=True)
+    model = unwrap_model(model)
+    eval_cfg = config["eval"]
+    device = next(model.parameters()).device
+    was_training = model.training
+    model.eval()
+    usable = cache.usable_indices
+    batch_size = int(batch_size or 2 * config["train"]["batch_size"])
+    train_rows = ~dataset.iscrowd
+    per_image = np.bincount(dataset.ann_image_index[train_rows], minlength=dataset.num_images)
+    max_dets = int(max(eval_cfg["max_detections"], per_image.max(initial=0)))
+    view_boxes = (dataset.boxes_xyxy() * cache.scale[dataset.ann_image_index][:, None]).astype(np.float32)
+    num_channels = None
+    features_tmp = rundir / f"object_features.npy.tmp-{os.getpid()}"
+    features: np.ndarray | None = None
+    found: list[tuple[np.ndarray, ...]] = []        # per batch: image_ids, category_ids, xywh, scores
+    try:
+        for start in range(0, len(usable), batch_size):
+            index = usable[start:start + batch_size]
+            pixels = torch.from_numpy(np.ascontiguousarray(cache.images[index]))
+            images = pixels.to(device).permute(0, 3, 1, 2).float().div_(255.0)
+            outputs = model(images)
+            dets = postprocess_detections(outputs, model.anchors, score_threshold=eval_cfg["score_threshold"],
+                                          max_detections=max_dets, box_variances=config["loss"]["box_variances"],
+                                          image_size=cache.image_size)
+            counts = np.array([len(d["scores"]) for d in dets])
+            if counts.sum():
+                owner = np.repeat(index, counts)
+                boxes = torch.cat([d["boxes"] for d in dets]).float().cpu().numpy()
+                xywh = _orig_xywh(boxes, cache.scale[owner], dataset.widths[owner], dataset.heights[owner])
+                keep = (xywh[:, 2] > 0) & (xywh[:, 3] > 0)
+                labels = torch.cat([d["labels"] for d in dets]).cpu().numpy()
+                scores = torch.cat([d["scores"] for d in dets]).float().cpu().numpy()
+                found.append((dataset.image_ids[owner][keep], dataset.category_ids[labels][keep], xywh[keep],
+                              scores[keep]))
+            if num_channels is None:
+                num_channels = int(outputs["features"][0].shape[1])
+                features = np.lib.format.open_memmap(features_tmp, mode="w+", dtype=np.float32,
+                                                     shape=(dataset.num_annotations, num_channels))
+                features[...] = np.nan
+            rows = np.concatenate([np.arange(dataset.image_offsets[i], dataset.image_offsets[i + 1]) for i in index])
+            rows = rows[train_rows[rows]].astype(np.int64)
+            if len(rows):
+                batch_of_row = np.searchsorted(index, dataset.ann_image_index[rows])
+                pooled = pooled_object_features(outputs["features"], torch.from_numpy(view_boxes[rows]).to(device),
+                                                torch.from_numpy(batch_of_row).to(device),
+                                                strides=list(model.strides))
+                features[rows] = pooled.float().cpu().numpy()
+        if features is None:
+            features = np.lib.format.open_memmap(features_tmp, mode="w+", dtype=np.float32,
+                                                 shape=(dataset.num_annotations, int(config["model"]["head_width"])))
+            features[...] = np.nan
+        features.flush()
+        del features
+        os.replace(features_tmp, rundir / "object_features.npy")
+    finally:
+        features_tmp.unlink(missing_ok=True)
+        model.train(was_training)
+
+    detections = [{"image_id": int(i), "category_id": int(c), "bbox": [round(float(v), 2) for v in box],
+                   "score": round(float(s), 5)}
+                  for ids, cats, boxes, scores in found for i, c, box, s in zip(ids, cats, boxes, scores)]
+    write_json_atomic(rundir / "detections.json", detections)
+    metrics = coco_metrics(dataset.to_coco_dict(), detections, max_dets=max_dets, min_ap50=eval_cfg["min_ap50"],
+                           image_ids=[int(i) for i in dataset.image_ids[usable]])
+    write_json_atomic(rundir / "metrics.json", metrics)
+    return metrics

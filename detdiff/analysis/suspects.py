@@ -78,9 +78,9 @@ def _frame(dataset: CocoDataset, kind: str, rows: np.ndarray, *, score: np.ndarr
     n = len(rows)
     has_ann = rows >= 0
     img = np.where(has_ann, _take(dataset.ann_image_index, rows), -1 if image_rows is None else image_rows)
-    box = np.where(has_ann[:, None], _take(dataset.boxes, rows), np.nan)
     sugg_label = np.full(n, -1) if suggested_label is None else np.asarray(suggested_label, dtype=np.int64)
     sugg_box = np.full((n, 4), np.nan) if suggested_box is None else np.asarray(suggested_box, dtype=np.float64)
+    box = np.where(has_ann[:, None], _take(dataset.boxes, rows), sugg_box)   # no annotation: the proposed box
     topic_label = np.where(has_ann, _take(dataset.labels, rows), sugg_label)
     dup = np.full(n, -1) if duplicate_of is None else np.asarray(duplicate_of, dtype=np.int64)
     cat = dataset.category_ids
@@ -213,10 +213,10 @@ def missing_box_suspects(dataset: CocoDataset, log: LossLog, epochs: list[int]) 
     empty = _frame(dataset, "missing_box", np.zeros(0, np.int64), score=np.zeros(0), evidence=[], action="add")
     if not ok.any():
         return empty
-    order = np.lexsort((epoch_pos[ok], label[ok], image[ok]))
+    order = np.lexsort((epoch_pos[ok], image[ok]))
     epoch_pos, image, label, score, box = (a[ok][order] for a in (epoch_pos, image, label, score, box))
     xyxy = _xyxy(box)
-    key = image * dataset.num_classes + label
+    key = image          # cluster per image across classes: one place is one proposal, whatever class wins
     starts = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
     offsets = np.r_[starts, len(key)]
     src, dst = [], []
@@ -231,7 +231,8 @@ def missing_box_suspects(dataset: CocoDataset, log: LossLog, epochs: list[int]) 
     frame = pd.DataFrame({"cluster": cluster, "epoch": epoch_pos, "image": image, "label": label, "score": score,
                           "x1": xyxy[:, 0], "y1": xyxy[:, 1], "x2": xyxy[:, 2], "y2": xyxy[:, 3]})
     groups = frame.groupby("cluster")
-    summary = groups.agg(image=("image", "first"), label=("label", "first"), epochs=("epoch", "nunique"),
+    summary = groups.agg(image=("image", "first"), label=("label", lambda v: v.mode().iat[0]),
+                         epochs=("epoch", "nunique"),
                          mean_score=("score", "mean"), x1=("x1", "median"), y1=("y1", "median"),
                          x2=("x2", "median"), y2=("y2", "median"))
     summary = summary[summary["epochs"] >= int(required_epochs(np.array(len(epochs)), 0.5))]

@@ -559,7 +559,9 @@ def _suspect_order(page: _Page, kind: str) -> pd.DataFrame:
 
 
 def _suspect_boxes(part: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-    annotated = part[["x", "y", "w", "h"]].apply(pd.to_numeric, errors="coerce").to_numpy(float).reshape(-1, 4)
+    """Annotated and suggested boxes; a missing_box has no annotated box (its x, y, w, h is the proposal)."""
+    annotated = part[["x", "y", "w", "h"]].apply(pd.to_numeric, errors="coerce").to_numpy(float, copy=True).reshape(-1, 4)
+    annotated[(part["kind"] == "missing_box").to_numpy()] = np.nan
     suggested = (part[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]]
                  .apply(pd.to_numeric, errors="coerce").to_numpy(float).reshape(-1, 4))
     return annotated, suggested

@@ -66,6 +66,11 @@ def load_config(path: str | Path | None = None, overrides: dict[str, dict[str, A
     return config
 
 
+def load_saved_config(path: str | Path) -> dict:
+    """A run folder's saved config, merged onto today's defaults so keys added since then have values."""
+    return _merge(_read_yaml(DEFAULT_CONFIG), _read_yaml(Path(path)), str(path))
+
+
 def save_config(config: dict, path: str | Path) -> None:
     """Write the config actually used, so a run can be repeated exactly."""
     Path(path).write_text(yaml.safe_dump(config, sort_keys=False))

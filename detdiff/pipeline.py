@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from detdiff import __version__
-from detdiff.config import load_config, save_config
+from detdiff.config import load_config, load_saved_config, save_config
 from detdiff.data.coco import CocoDataset, build_dataset, load_saved_dataset, read_coco_json, save_dataset
 
 DATASET_FILE = "dataset.npz"
@@ -79,9 +79,7 @@ def load_run(rundir: str | Path) -> tuple[CocoDataset, dict]:
     if not (rundir / DATASET_FILE).exists() or not (rundir / "config.yaml").exists():
         raise RunFolderError(f"{rundir}: not a detdiff run folder (no {DATASET_FILE} / config.yaml); "
                              f"run 'detdiff audit' first")
-    import yaml
-
-    return load_saved_dataset(rundir / DATASET_FILE), yaml.safe_load((rundir / "config.yaml").read_text())
+    return load_saved_dataset(rundir / DATASET_FILE), load_saved_config(rundir / "config.yaml")
 
 
 def analyze(rundir: str | Path, dataset: CocoDataset | None = None, config: dict | None = None):
@@ -115,9 +113,7 @@ def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dic
     saved = rundir / "config.yaml"
     if not (resume and saved.exists()):
         return load_config(config_path, overrides)
-    import yaml
-
-    config = yaml.safe_load(saved.read_text())
+    config = load_saved_config(saved)
     epochs = overrides.get("train", {}).get("epochs")
     if epochs is not None:
         config["train"]["epochs"] = int(epochs)

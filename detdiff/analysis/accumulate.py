@@ -3,10 +3,12 @@
 Per image (rows = image index ``[I]``), from ``image.<field> [E, I]``:
     loc_score = sum_e loc_sum / max(1, num_pos)     box regression (smooth L1) per positive anchor
     pos_score = sum_e pos_sum / max(1, num_pos)     positive-class loss per positive anchor
-    neg_score = sum_e neg_sum                       background-class loss, *raw* sum over background anchors
-The background stream is not divided by anything: every image is letterboxed to the same S x S view, so
-every image has the same anchor set and raw sums compare between images. Dividing by ``num_pos`` would
-make an image with few objects look hard in the background stream for no reason of its own.
+    neg_score = sum_e neg_sum [/ max(1, num_pos)]   background-class loss
+How the background stream is normalised follows what it sums. With focal loss over *all* background
+anchors (``loss.classification: focal``) it is not divided: every image is letterboxed to the same S x S
+view, so every image has the same anchor set and raw sums compare. With hard-negative mining
+(``hard_negative``) the sum covers ``3 x num_pos`` mined anchors, so it grows with the object count and is
+divided by ``max(1, num_pos)`` like the training objective: the mean loss of the mined negatives.
 
 Per object (rows = annotation index ``[A]``), from ``object.<field> [E, A]``:
     loc_score = sum_e loc_sum / max(1, num_anchors),  pos_score = sum_e cls_sum / max(1, num_anchors)
@@ -77,12 +79,14 @@ def _per_count(sums: np.ndarray, counts: np.ndarray) -> np.ndarray:
     return np.asarray(sums, dtype=np.float64) / np.maximum(1, np.asarray(counts))
 
 
-def image_scores(log: LossLog) -> pd.DataFrame:
+def image_scores(log: LossLog, *, mined_background: bool = False) -> pd.DataFrame:
     """Accumulated image streams (rows = image index): loc/pos/neg ``_score``, ``_pct``, ``_raw`` and
-    ``epochs_covered`` (see module docstring for the normalisation)."""
+    ``epochs_covered``. ``mined_background``: the log's background sums cover mined anchors only
+    (hard-negative mining), so they are divided by the positives (see module docstring)."""
     num_pos = log.image_field("num_pos")
     table = {}
-    for stream, field, normalise in (("loc", "loc_sum", True), ("pos", "pos_sum", True), ("neg", "neg_sum", False)):
+    for stream, field, normalise in (("loc", "loc_sum", True), ("pos", "pos_sum", True),
+                                     ("neg", "neg_sum", mined_background)):
         raw = log.image_field(field)
         per_epoch = _per_count(raw, num_pos) if normalise else raw
         table[f"{stream}_score"] = accumulate_over_epochs(per_epoch)

@@ -151,7 +151,7 @@ def wrong_class_suspects(dataset: CocoDataset, late: LossLog, pos_pct: np.ndarra
     suggested = counts.argmax(axis=1)
     margin = np.nanmean(np.where(valid[:, rows], logit_other[:, rows] - logit_label[:, rows], np.nan), axis=0)
     iou = np.nanmean(np.where(won[:, rows], pred_iou[:, rows], np.nan), axis=0)
-    score = share[rows] * sigmoid(margin)
+    score = sigmoid(margin)        # mean late margin of the winner: ranks like area under the margin
     evidence = [f"the detector preferred '{_name(dataset, s)}' over the labelled '{_name(dataset, labels[r])}' in "
                 f"{int(won[:, r].sum())} of {int(n_valid[r])} late epochs (mean IoU {i:.2f}, mean logit margin "
                 f"{m:+.2f}); pos_score at the {p:.0f}th percentile"
@@ -260,7 +260,8 @@ def find_suspects(dataset: CocoDataset, log: LossLog, object_pct: pd.DataFrame, 
     pos_pct = object_pct["pos_pct"].to_numpy(dtype=np.float64)
     frames = [
         wrong_class_suspects(dataset, late, np.nan_to_num(pos_pct, nan=-1.0),
-                             min_share=float(analysis_cfg["wrong_class_min_epochs"]), high_pct=high_pct),
+                             min_share=float(analysis_cfg["wrong_class_min_epochs"]),
+                             high_pct=float(analysis_cfg["wrong_class_min_pct"])),
         missing_box_suspects(dataset, log, epochs),
         loose_box_suspects(dataset, late, np.nan_to_num(loc_pct, nan=-1.0),
                            iou_range=tuple(analysis_cfg["loose_box_iou"]), high_pct=high_pct),

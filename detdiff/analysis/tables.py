@@ -94,7 +94,7 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
     rundir = Path(rundir)
     cfg = config["analysis"]
     log = LossLog.open(rundir / "log")
-    img_scores = accumulate.image_scores(log)
+    img_scores = accumulate.image_scores(log, mined_background=config["loss"]["classification"] == "hard_negative")
     obj_scores = accumulate.object_scores(log, dataset.labels, dataset.num_classes)
     if len(img_scores) != dataset.num_images or len(obj_scores) != dataset.num_annotations:
         raise ValueError(f"{rundir / 'log'}: the log has {len(img_scores)} images and {len(obj_scores)} objects, "

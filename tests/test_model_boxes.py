@@ -1,0 +1,122 @@
+"""Box geometry, encoding, anchors and matching of detdiff.model, checked against torchvision and the SSD rule."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+import torch
+from hypothesis import given, settings, strategies as st
+from torchvision.ops import box_iou
+
+from detdiff.model.anchors import BACKGROUND, IGNORED, anchor_shapes, make_anchors, match_anchors, match_batched
+from detdiff.model.box_coder import BoxCoder, xyxy_to_cxcywh
+from detdiff.model.losses import paired_box_iou
+
+
+def random_boxes(n: int, seed: int, size: float = 100.0) -> torch.Tensor:
+    g = torch.Generator().manual_seed(seed)
+    xy = torch.rand(n, 2, generator=g) * size
+    wh = 1 + torch.rand(n, 2, generator=g) * size / 2
+    return torch.cat((xy, xy + wh), dim=1)
+
+
+def test_box_iou_worked_value() -> None:
+    # torchvision.ops.box_iou worked value from /work/shared/CHECKS.md: [1/7, 1, 0] (IoU definition)
+    box = torch.tensor([[0.0, 0, 10, 10]])
+    others = torch.tensor([[5.0, 5, 15, 15], [0, 0, 10, 10], [10, 10, 20, 20]])
+    expected = torch.tensor([1 / 7, 1.0, 0.0])
+    torch.testing.assert_close(box_iou(box, others)[0], expected)
+    torch.testing.assert_close(paired_box_iou(box.expand(3, 4), others), expected)
+
+
+def test_paired_iou_equals_torchvision_diagonal() -> None:
+    # reference: torchvision.ops.box_iou (all pairs); ours is its diagonal
+    a, b = random_boxes(50, 1), random_boxes(50, 2)
+    torch.testing.assert_close(paired_box_iou(a, b), box_iou(a, b).diagonal())
+
+
+def test_encode_decode_round_trip() -> None:
+    # SSD centre/size offsets with variances 0.1/0.2 (Liu et al. 2016; variances from memory of its reference code)
+    coder = BoxCoder((0.1, 0.1, 0.2, 0.2))
+    gt, anchors = random_boxes(40, 3), random_boxes(40, 4)
+    deltas = coder.encode(gt, anchors)
+    torch.testing.assert_close(coder.decode(deltas, anchors), gt, rtol=1e-5, atol=1e-4)
+
+
+def test_encode_hand_value() -> None:
+    # worked by hand from the SSD offsets: centre shift of a quarter width -> 0.25 / 0.1; doubled side -> log 2 / 0.2
+    coder = BoxCoder((0.1, 0.1, 0.2, 0.2))
+    anchor = torch.tensor([[0.0, 0, 10, 10]])
+    gt = torch.tensor([[-2.5, -5, 17.5, 15]])        # centre (7.5, 5), size 20 x 20
+    expected = torch.tensor([[2.5, 0.0, math.log(2) / 0.2, math.log(2) / 0.2]])
+    torch.testing.assert_close(coder.encode(gt, anchor), expected)
+
+
+def test_decode_clamps_exp_input() -> None:
+    coder = BoxCoder()
+    boxes = coder.decode(torch.tensor([[0.0, 0, 1e6, 1e6]]), torch.tensor([[0.0, 0, 10, 10]]))
+    assert torch.isfinite(boxes).all()
+
+
+def test_anchor_count_order_and_shapes() -> None:
+    strides, sizes, scales, ratios = (8, 16), (16, 32), (0.5, 1.0), (0.5, 1.0, 2.0)
+    anchors = make_anchors(64, strides, sizes, scales, ratios)
+    per_loc = len(scales) * len(ratios)
+    assert anchors.shape == ((8 * 8 + 4 * 4) * per_loc, 4)
+    centres = xyxy_to_cxcywh(anchors)
+    # first location of level 0 is the top-left cell centre, the next location is one stride to the right
+    torch.testing.assert_close(centres[:per_loc, :2], torch.full((per_loc, 2), 4.0))
+    torch.testing.assert_close(centres[per_loc, :2], torch.tensor([12.0, 4.0]))
+    # ratio = height / width, area = side^2
+    wh = centres[:per_loc, 2:]
+    torch.testing.assert_close(wh[:, 1] / wh[:, 0], torch.tensor(ratios * 2))
+    torch.testing.assert_close(wh.prod(1), torch.tensor([8.0 ** 2] * 3 + [16.0 ** 2] * 3))
+    torch.testing.assert_close(anchor_shapes([16], [1.0]), torch.tensor([[16.0, 16.0]]))
+
+
+def test_anchor_size_must_divide() -> None:
+    with pytest.raises(ValueError, match="multiple"):
+        make_anchors(100, (8, 16, 32), (32, 64, 128), (1.0,), (1.0,))
+
+
+def test_matching_hand_made_case() -> None:
+    # SSD matching rule (Liu et al., ECCV 2016): IoU >= 0.5 positive, each box also takes its best anchor,
+    # below 0.4 background, between ignored. IoUs worked by hand below.
+    anchors = torch.tensor([
+        [0.0, 0, 10, 10],     # = gt0 -> IoU 1.0 -> positive 0
+        [0.0, 0, 10, 5],      # IoU 0.5 with gt0 -> positive 0
+        [0.0, 0, 10, 4.5],    # IoU 0.45 with gt0 -> ignored
+        [0.0, 0, 10, 3],      # IoU 0.3 -> background
+        [50.0, 50, 60, 60],   # no overlap -> background
+        [100.0, 100, 130, 130],   # IoU 100/900 with gt1: below 0.4 but gt1's best anchor -> positive 1
+    ])
+    gt = torch.tensor([[0.0, 0, 10, 10], [110.0, 110, 120, 120]])
+    torch.testing.assert_close(box_iou(anchors, gt)[:4, 0], torch.tensor([1.0, 0.5, 0.45, 0.3]))
+    matched = match_anchors(anchors, gt, pos_iou=0.5, neg_iou=0.4)
+    assert matched.tolist() == [0, 0, IGNORED, BACKGROUND, BACKGROUND, 1]
+
+
+def test_matching_without_boxes_is_all_background() -> None:
+    anchors = random_boxes(10, 5)
+    matched = match_anchors(anchors, torch.zeros((0, 4)), 0.5, 0.4)
+    assert (matched == BACKGROUND).all()
+
+
+@settings(max_examples=25, deadline=None)
+@given(counts=st.lists(st.integers(0, 6), min_size=1, max_size=4), seed=st.integers(0, 1000))
+def test_batched_matching_equals_per_image(counts: list[int], seed: int) -> None:
+    # padding the boxes of a batch must not change any image's matching (reference: per-image match_anchors)
+    anchors = make_anchors(64, (8, 16), (16, 32), (1.0,), (0.5, 1.0, 2.0))
+    gts = [random_boxes(n, seed + k, size=56.0) for k, n in enumerate(counts)]
+    width = max(counts)
+    pad = torch.zeros((len(counts), width, 4))
+    valid = torch.zeros((len(counts), width), dtype=torch.bool)
+    for k, g in enumerate(gts):
+        pad[k, : len(g)] = g
+        valid[k, : len(g)] = True
+    iou = box_iou(anchors, pad.reshape(-1, 4)).reshape(len(anchors), len(counts), width).permute(1, 0, 2)
+    matched, _ = match_batched(iou, valid, 0.5, 0.4)
+    for k, g in enumerate(gts):
+        single = match_anchors(anchors, g, 0.5, 0.4)
+        assert torch.equal(matched[k], single)

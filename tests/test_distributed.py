@@ -20,7 +20,7 @@ from detdiff.train.loss_log import LossLog
 EPOCHS = 2
 
 CHILD = textwrap.dedent("""
-    import json, sys
+    import json, os, pathlib, sys
     from detdiff.config import load_config
     from detdiff.data.coco import build_dataset, read_coco_json
     from detdiff.data.image_cache import ImageCache
@@ -33,7 +33,8 @@ CHILD = textwrap.dedent("""
                                                                           "threads": 1, "device": "cpu"}})
         dataset = build_dataset(read_coco_json(ann), images_dir=images)
         result = train_and_log(dataset, ImageCache.open(cache_dir), config, rundir, progress=False)
-        print(json.dumps({"world_size": result.world_size, "images_per_second": result.images_per_second}))
+        report = {"world_size": result.world_size, "images_per_second": result.images_per_second}
+        pathlib.Path(rundir, f"report.rank{os.environ['RANK']}.json").write_text(json.dumps(report))
         ddp.shutdown()
 
     if __name__ == "__main__":
@@ -81,7 +82,7 @@ def test_two_cpu_processes_with_torchrun_merge_one_log(tmp_path):
                            str(tmp_path / "cache"), str(run), str(EPOCHS)],
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
-    reports = [json.loads(line) for line in proc.stdout.splitlines() if line.startswith("{")]
+    reports = [json.loads(p.read_text()) for p in sorted(run.glob("report.rank*.json"))]  # one file per rank
     assert len(reports) == 2 and all(r["world_size"] == 2 for r in reports)
 
     log = LossLog.open(run / "log")

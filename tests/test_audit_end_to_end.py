@@ -3,7 +3,9 @@
 Real-image case: scikit-learn's bundled handwritten digits (UCI "Optical Recognition of Handwritten
 Digits", Alpaydin & Kaynak 1998) pasted on scikit-image's CC0 textures, with confusable labels swapped.
 AUROC is computed with scikit-learn's roc_auc_score. Floors are modest (measured values are in the
-issue notes) because the ci detector is tiny and trains for seconds.
+issue notes) because the detector trains for seconds. Both runs use the ci config with the default
+model width: with fewer than ~400 digit scenes the detector memorises the swapped labels within a dozen
+epochs and their loss falls back to that of clean boxes (measured: AUROC 0.72 at 160 scenes, 0.93 at 400).
 """
 
 from __future__ import annotations
@@ -23,13 +25,14 @@ from detdiff.pipeline import run_audit
 from digits_scene import build_digit_scenes
 
 pytestmark = pytest.mark.slow
+MODEL = {"model": {"width": 32, "head_width": 64}}     # the default width, at the ci view size
 
 
 @pytest.fixture(scope="module")
 def digits_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("digits")
-    ann, images, swapped = build_digit_scenes(root, num_images=160, seed=0)
-    run_audit(ann, images, root / "run", config_path="ci", overrides={"train": {"epochs": 12}},
+    ann, images, swapped = build_digit_scenes(root, num_images=400, seed=0)
+    run_audit(ann, images, root / "run", config_path="ci", overrides={**MODEL, "train": {"epochs": 12}},
               progress=False, make_report=False)
     return open_run(root / "run"), swapped
 
@@ -37,9 +40,10 @@ def digits_run(tmp_path_factory):
 @pytest.fixture(scope="module")
 def demo_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("demo")
-    demo = generate_demo(root / "data", num_images=160, seed=1, progress=False)
+    demo = generate_demo(root / "data", num_images=300, seed=1, progress=False)
     run_audit(demo.annotations, demo.images_dir, root / "run", config_path="ci",
-              overrides={"train": {"epochs": 12}}, progress=False, make_report=True)
+              overrides={**MODEL, "data": {"image_size": 160}, "train": {"epochs": 16}}, progress=False,
+              make_report=True)
     return open_run(root / "run"), demo
 
 
@@ -48,8 +52,8 @@ def test_swapped_digit_labels_rank_near_the_top(digits_run) -> None:
     objects = run.objects
     positive = objects["annotation_id"].isin(swapped).to_numpy()
     auroc = roc_auc_score(positive, objects["pos_score"].to_numpy())
-    assert auroc > 0.8, auroc
-    assert objects.loc[positive, "pos_pct"].median() > 80
+    assert auroc > 0.85, auroc                          # measured 0.93
+    assert objects.loc[positive, "pos_pct"].median() > 80   # measured 94
 
 
 def test_swapped_digits_are_suspected_with_the_true_class(digits_run) -> None:
@@ -62,13 +66,13 @@ def test_swapped_digits_are_suspected_with_the_true_class(digits_run) -> None:
 def test_demo_planted_wrong_classes_rank_above_clean_boxes(demo_run) -> None:
     run, demo = demo_run
     scores = score_against_truth(run.rundir, demo.truth)
-    assert scores["wrong_class"]["auroc"] > 0.8, scores["wrong_class"]
+    assert scores["wrong_class"]["auroc"] > 0.75, scores["wrong_class"]   # measured 0.86
     assert scores["wrong_class"]["auroc"] > scores["wrong_class"]["auroc_random"]
 
 
 def test_demo_detector_learned_something(demo_run) -> None:
     run, _ = demo_run
-    assert run.metrics["AP50"] > 0.15, run.metrics
+    assert run.metrics["AP50"] > 0.4, run.metrics                        # measured 0.78
 
 
 def test_review_file_loads_in_pycocotools(demo_run) -> None:

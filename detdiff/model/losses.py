@@ -13,8 +13,9 @@ Streams (all computed per anchor with ``reduction='none'`` and then summed):
 * **background-class** (``neg``): classification loss of background anchors (all C outputs -> 0).
   ``loss.classification: focal`` uses every background anchor with :func:`torchvision.ops.sigmoid_focal_loss`
   (Lin et al., ICCV 2017); ``hard_negative`` uses binary cross-entropy and keeps per image only the
-  ``neg_pos_ratio * num_pos`` background anchors of highest loss (Liu et al., SSD, ECCV 2016) -- so an image
-  without positives has no background loss under ``hard_negative``.
+  ``neg_pos_ratio * max(1, num_pos)`` background anchors of highest loss (Liu et al., SSD, ECCV 2016). The
+  ``max(1, .)`` is ours: SSD mines nothing in an image without positives, which would hide an image whose
+  objects are all unannotated (missing boxes) from the background stream.
 
 Ignored anchors (IoU between ``neg_iou`` and ``pos_iou``) contribute nothing.
 
@@ -148,7 +149,8 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
         cls_anchor = F.binary_cross_entropy_with_logits(logits, cls_target, reduction="none").sum(-1)
         ranked = cls_anchor.detach().masked_fill(~background, -1.0)
         order = ranked.argsort(dim=1, descending=True)
-        keep_sorted = torch.arange(num_anchors, device=device)[None, :] < (loss_cfg["neg_pos_ratio"] * num_pos)[:, None]
+        num_mined = loss_cfg["neg_pos_ratio"] * num_pos.clamp(min=1)     # >= 3 even without positives
+        keep_sorted = torch.arange(num_anchors, device=device)[None, :] < num_mined[:, None]
         negatives = torch.zeros_like(background).scatter_(1, order, keep_sorted) & background
     else:
         raise ValueError(f"loss.classification: expected 'focal' or 'hard_negative', got {kind!r}")

@@ -239,7 +239,9 @@ def _unmatched_detections(logits: torch.Tensor, deltas: torch.Tensor, anchors: t
     flat = logits.reshape(batch, -1)
     min_score = min(max(float(log_cfg["unmatched_min_score"]), 1e-6), 1 - 1e-6)
     min_logit = math.log(min_score / (1 - min_score))
-    cand_b, flat_index = (flat >= min_logit).nonzero(as_tuple=True)
+    anchor_b, anchor_n = (logits.amax(-1) >= min_logit).nonzero(as_tuple=True)    # anchors with any confident class
+    hit_anchor, hit_class = (logits[anchor_b, anchor_n] >= min_logit).nonzero(as_tuple=True)
+    cand_b, flat_index = anchor_b[hit_anchor], anchor_n[hit_anchor] * num_classes + hit_class
     if cand_b.shape[0] > 8 * UNMATCHED_PRE_NMS * batch:     # an untrained or diverging model: bound the sort
         top_logit, top_index = flat.topk(min(UNMATCHED_PRE_NMS, flat.shape[1]), dim=1)
         cand_b, cand_k = (top_logit >= min_logit).nonzero(as_tuple=True)

@@ -70,10 +70,9 @@ def audit(annotations: str | Path, images: str | Path, out: str | Path, *, confi
           device: str | None = None, seed: int | None = None, resume: bool = False, progress: bool = True,
           report: bool = True, thumbnails: bool | None = None) -> AuditRun:
     """Run the full audit (check, train with loss logging, analyse, report) and return the run."""
-    from detdiff.pipeline import run_audit
+    from detdiff.pipeline import run_audit, run_overrides
 
-    overrides = {"data": {"image_size": image_size},
-                 "train": {"epochs": epochs, "batch_size": batch_size, "device": device, "seed": seed}}
+    overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed)
     run_audit(annotations, images, out, config_path=config, overrides=overrides, resume=resume,
               progress=progress, make_report=report, thumbnails=thumbnails)
     return AuditRun(Path(out))

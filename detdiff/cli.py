@@ -47,11 +47,10 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 
 def _overrides(args: argparse.Namespace) -> dict:
-    return {
-        "data": {"image_size": args.image_size},
-        "train": {"epochs": args.epochs, "batch_size": args.batch_size, "device": args.device, "seed": args.seed,
-                  "threads": args.threads},
-    }
+    from detdiff.pipeline import run_overrides
+
+    return run_overrides(image_size=args.image_size, epochs=args.epochs, batch_size=args.batch_size,
+                         device=args.device, seed=args.seed, threads=args.threads)
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:

@@ -6,7 +6,6 @@ nothing already computed, and ``detdiff analyze`` / ``detdiff report`` can redo 
 
 from __future__ import annotations
 
-import json
 import os
 import shutil
 import sys
@@ -16,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from detdiff import __version__
+from detdiff.atomic import write_json_atomic
 from detdiff.config import load_config, load_saved_config, save_config
 from detdiff.data.coco import CocoDataset, build_dataset, load_saved_dataset, read_coco_json, save_dataset
 
@@ -34,13 +34,6 @@ class AuditResult:
     report: Path | None
     metrics: dict[str, Any]
     summary: str
-
-
-def write_json_atomic(path: Path, payload: Any) -> None:
-    """Write JSON to a temporary name, then rename: a reader never sees half a file."""
-    tmp = path.with_name(path.name + f".tmp-{os.getpid()}")
-    tmp.write_text(json.dumps(payload, indent=2, default=str))
-    tmp.replace(path)
 
 
 def prepare_rundir(rundir: Path) -> None:
@@ -106,6 +99,14 @@ def report(rundir: str | Path, *, top: int | None = None, thumbnails: bool | Non
     return write_report(rundir, top=int(top if top is not None else rcfg["top"]),
                         thumbnails=bool(rcfg["thumbnails"] if thumbnails is None else thumbnails),
                         thumbnail_size=int(rcfg["thumbnail_size"]))
+
+
+def run_overrides(*, image_size: int | None = None, epochs: int | None = None, batch_size: int | None = None,
+                  device: str | None = None, seed: int | None = None, threads: int | None = None) -> dict:
+    """Config overrides from the command line or the API (``None`` = keep the config file's value)."""
+    return {"data": {"image_size": image_size},
+            "train": {"epochs": epochs, "batch_size": batch_size, "device": device, "seed": seed,
+                      "threads": threads}}
 
 
 def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dict, resume: bool) -> dict:

@@ -10,7 +10,6 @@ epochs and their loss falls back to that of clean boxes (measured: AUROC 0.72 at
 
 from __future__ import annotations
 
-import json
 
 import numpy as np
 import pandas as pd

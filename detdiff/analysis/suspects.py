@@ -138,7 +138,6 @@ def wrong_class_suspects(dataset: CocoDataset, late: LossLog, pos_pct: np.ndarra
     winner = np.where(by_pred, pred_label, other_label)
     n_valid = valid.sum(axis=0)
     n_won = won.sum(axis=0)
-    share = n_won / np.maximum(n_valid, 1)
     persistent = n_won >= required_epochs(n_valid, min_share)
     rows = np.flatnonzero((n_valid > 0) & persistent & (pos_pct >= high_pct) & ~dataset.iscrowd)
     if not len(rows):

@@ -16,9 +16,7 @@ and JSON keys are sorted.
 
 from __future__ import annotations
 
-import json
 import math
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
@@ -26,6 +24,8 @@ from typing import Any, Callable
 import cv2
 import numpy as np
 from tqdm import tqdm
+
+from detdiff.atomic import write_json_atomic
 
 SCENARIO = "warehouse packing table seen from a ceiling camera looking straight down"
 
@@ -604,13 +604,6 @@ def _ids(rng: np.random.Generator, count: int, start_low: int, start_high: int, 
     return (int(rng.integers(start_low, start_high)) + np.cumsum(steps) - steps[0]).tolist()
 
 
-def _write_json(path: Path, data: dict[str, Any]) -> None:
-    """Write JSON with sorted keys, via a temporary file renamed into place."""
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(data, sort_keys=True, indent=1) + "\n", encoding="utf-8")
-    os.replace(tmp, path)
-
-
 def generate_demo(out_dir: str | Path, *, num_images: int = 300, seed: int = 0, width: int = 320,
                   height: int = 240, fault_rates: dict[str, float] | None = None,
                   progress: bool = True) -> DemoPaths:
@@ -728,6 +721,6 @@ def generate_demo(out_dir: str | Path, *, num_images: int = 300, seed: int = 0, 
                         **{k: sum(1 for f in fault_records if f["kind"] == k) for k in DEFAULT_FAULT_RATES}},
              "faults": fault_records, "objects": truth_objects, "images": image_records}
     paths = DemoPaths(annotations=out_dir / "annotations.json", images_dir=images_dir, truth=out_dir / "truth.json")
-    _write_json(paths.annotations, coco)
-    _write_json(paths.truth, truth)
+    write_json_atomic(paths.annotations, coco, sort_keys=True)
+    write_json_atomic(paths.truth, truth, sort_keys=True)
     return paths

@@ -6,7 +6,6 @@ one :func:`torchvision.ops.roi_align` per pyramid level.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from typing import Any
 

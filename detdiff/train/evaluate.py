@@ -16,7 +16,6 @@ from __future__ import annotations
 import contextlib
 import copy
 import io
-import json
 import os
 from pathlib import Path
 from typing import Any
@@ -26,6 +25,7 @@ import torch
 from pycocotools.coco import COCO
 from pycocotools.cocoeval import COCOeval
 
+from detdiff.atomic import write_json_atomic
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache
 from detdiff.model.postprocess import pooled_object_features, postprocess_detections
@@ -104,15 +104,6 @@ def coco_metrics(gt_dict: dict[str, Any], detections: list[dict[str, Any]], *, m
         f"so its losses measure the detector's weakness as much as the data: treat the difficulty scores and "
         f"suspects as rough, and train longer (train.epochs) or larger (data.image_size, model.width).")
     return metrics
-
-
-def write_json_atomic(path: str | Path, data: Any) -> Path:
-    """Write ``data`` as JSON through a temporary file and ``os.replace`` (never a half-written file)."""
-    path = Path(path)
-    tmp = path.with_name(f"{path.name}.tmp-{os.getpid()}")
-    tmp.write_text(json.dumps(data, indent=1))
-    os.replace(tmp, path)
-    return path
 
 
 def _orig_xywh(boxes_view: np.ndarray, scale: np.ndarray, width: np.ndarray, height: np.ndarray) -> np.ndarray:

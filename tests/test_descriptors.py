@@ -14,10 +14,11 @@ from sklearn.decomposition import PCA
 from sklearn.metrics import roc_auc_score
 from torchvision.ops import box_iou
 
-from detdiff.analysis.descriptors import (SIZE_BIN_LABELS, feature_descriptors, group_pairs, image_descriptors,
+from detdiff.analysis.descriptors import (SIZE_BIN_LABELS, feature_descriptors, image_descriptors,
                                           object_descriptors, pairwise_overlap, read_pixel_descriptors,
                                           size_bins, truncation)
 from detdiff.analysis.pixel_descriptors import edge_density, laplacian_variance
+from detdiff.boxes import group_pairs
 from detdiff.data.coco import CocoDataset
 
 

@@ -1,6 +1,7 @@
 """COCO lint: one hand-made case per finding, exit statuses, and agreement with outside references.
 
-References: pycocotools (COCO index, mask.area / frPyObjects / encode), torchvision.ops.box_iou,
+References: pycocotools (COCO index, mask.area / frPyObjects / encode; the pair IoU behind near
+duplicates is checked against torchvision.ops.box_iou in test_boxes.py),
 OpenCV (cv2.imwrite makes the image files the header reader must understand).
 """
 
@@ -9,7 +10,6 @@ from __future__ import annotations
 import contextlib
 import copy
 import io
-import itertools
 import json
 import os
 from collections.abc import Callable
@@ -18,10 +18,8 @@ from pathlib import Path
 import cv2
 import numpy as np
 import pytest
-import torch
 from pycocotools import mask as mask_utils
 from pycocotools.coco import COCO
-from torchvision.ops import box_iou
 
 import detdiff.data.lint as lint
 from detdiff.data.coco import build_dataset
@@ -357,25 +355,6 @@ def test_rle_area_is_pycocotools_area(tmp_path) -> None:
     path, images = write_case(tmp_path, d)
     (finding,) = [f for f in lint_coco(path, images).findings if f.code == "area_mask_mismatch"]
     assert f"{float(mask_utils.area(square_rle(10, 10, 8))):g} pixels" in finding.message  # pycocotools.mask.area
-
-
-def test_pair_iou_matches_torchvision() -> None:
-    rng = np.random.default_rng(0)
-    a = np.c_[rng.uniform(0, 50, (200, 2)), rng.uniform(1, 30, (200, 2))]
-    b = np.c_[rng.uniform(0, 50, (200, 2)), rng.uniform(1, 30, (200, 2))]
-    xyxy = lambda boxes: torch.from_numpy(np.c_[boxes[:, :2], boxes[:, :2] + boxes[:, 2:]])  # noqa: E731
-    reference = box_iou(xyxy(a), xyxy(b)).diagonal().numpy()  # reference: torchvision.ops.box_iou
-    np.testing.assert_allclose(lint._pair_iou(a, b), reference, rtol=1e-12, atol=1e-12)
-    # CHECKS.md worked value: box_iou([0,0,10,10], [5,5,15,15]) = 1/7
-    assert lint._pair_iou(np.array([[0.0, 0, 10, 10]]), np.array([[5.0, 5, 10, 10]]))[0] == pytest.approx(1 / 7)
-
-
-def test_group_pairs_are_all_pairs_in_small_chunks(monkeypatch) -> None:
-    monkeypatch.setattr(lint, "PAIR_CHUNK", 3)
-    groups = np.array([0, 0, 0, 0, 2, 5, 5, 5, 9])
-    found = {(int(i), int(j)) for left, right in lint._group_pairs(groups) for i, j in zip(left, right)}
-    brute = {(i, j) for i, j in itertools.combinations(range(len(groups)), 2) if groups[i] == groups[j]}
-    assert found == brute
 
 
 def test_shoelace_area_agrees_with_pycocotools_raster() -> None:

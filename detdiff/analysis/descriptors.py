@@ -23,7 +23,6 @@ are reduced with ``ufunc.reduceat`` over the pairs of each box. Cost is sum over
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -32,6 +31,7 @@ import pandas as pd
 import scipy.sparse
 
 from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
+from detdiff.boxes import PAIR_CHUNK, group_pairs, pair_iou
 from detdiff.data.coco import CocoDataset
 
 #: Area edges of the COCO size bins (pycocotools ``COCOeval().params.areaRng``: small [0, 32^2],
@@ -47,10 +47,6 @@ OCCLUSION_GRID = 8
 #: A box side within this many pixels of the image border counts as touching it.
 BORDER_TOLERANCE_PX = 1.0
 
-#: Pairs generated per chunk: bounds memory to a few hundred MB whatever the box count per image.
-PAIR_CHUNK = 2_000_000
-
-
 def size_bins(areas: np.ndarray) -> np.ndarray:
     """COCO size bin index per area ``[N]``: 0 small (< 32^2), 1 medium (< 96^2), 2 large.
 
@@ -58,48 +54,6 @@ def size_bins(areas: np.ndarray) -> np.ndarray:
     inclusive (see :data:`SIZE_BIN_EDGES`).
     """
     return np.searchsorted(np.asarray(SIZE_BIN_EDGES), np.asarray(areas, dtype=np.float64), side="right")
-
-
-def group_pairs(group_offsets: np.ndarray, *, chunk: int = PAIR_CHUNK) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-    """Yield ``(rows_i, rows_j)`` int64 arrays of every ordered pair i != j of rows in the same group.
-
-    ``group_offsets [G+1]`` (starting at 0): rows ``offsets[g]:offsets[g+1]`` form group g. Pairs
-    come ordered by i, then j, in chunks of about ``chunk`` pairs; a row's pairs never span two chunks.
-    """
-    offsets = np.asarray(group_offsets, dtype=np.int64)
-    sizes = np.diff(offsets)
-    num_rows = int(offsets[-1])
-    if num_rows == 0:
-        return
-    group_of_row = np.repeat(np.arange(len(sizes)), sizes)
-    partners = sizes[group_of_row]                       # pairs of row r, self included: [R]
-    row_start = offsets[group_of_row]
-    cum = np.cumsum(partners)
-    first = 0
-    while first < num_rows:
-        base = cum[first - 1] if first else 0
-        last = max(int(np.searchsorted(cum, base + chunk, side="right")), first + 1)
-        rows = np.arange(first, last)
-        counts = partners[first:last]
-        rows_i = np.repeat(rows, counts)
-        starts = np.cumsum(counts) - counts
-        rows_j = np.repeat(row_start[first:last] - starts, counts) + np.arange(len(rows_i))
-        keep = rows_i != rows_j
-        yield rows_i[keep], rows_j[keep]
-        first = last
-
-
-def pair_iou(boxes_xyxy: np.ndarray, rows_i: np.ndarray, rows_j: np.ndarray) -> np.ndarray:
-    """IoU of ``boxes_xyxy[rows_i]`` with ``boxes_xyxy[rows_j]`` elementwise ``[P]`` (definition as in
-    torchvision.ops.box_iou, without the full matrix)."""
-    a, b = boxes_xyxy[rows_i], boxes_xyxy[rows_j]
-    iw = np.clip(np.minimum(a[:, 2], b[:, 2]) - np.maximum(a[:, 0], b[:, 0]), 0, None)
-    ih = np.clip(np.minimum(a[:, 3], b[:, 3]) - np.maximum(a[:, 1], b[:, 1]), 0, None)
-    inter = iw * ih
-    area_a = (a[:, 2] - a[:, 0]) * (a[:, 3] - a[:, 1])
-    area_b = (b[:, 2] - b[:, 0]) * (b[:, 3] - b[:, 1])
-    union = area_a + area_b - inter
-    return np.divide(inter, union, out=np.zeros_like(inter), where=union > 0)
 
 
 def _grid_span_bits(lo: np.ndarray, hi: np.ndarray, start: np.ndarray, length: np.ndarray) -> np.ndarray:

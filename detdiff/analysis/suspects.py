@@ -29,7 +29,8 @@ import pandas as pd
 import scipy.sparse
 import scipy.sparse.csgraph
 
-from detdiff.analysis.descriptors import PairwiseOverlap, group_pairs, pair_iou
+from detdiff.analysis.descriptors import PairwiseOverlap
+from detdiff.boxes import group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
 from detdiff.analysis.dynamics import sigmoid
 from detdiff.data.coco import CocoDataset
 from detdiff.train.loss_log import LossLog
@@ -56,14 +57,6 @@ def required_epochs(available: np.ndarray, share: float) -> np.ndarray:
     ``max(ceil(share * n), min(2, n))`` elementwise."""
     n = np.asarray(available)
     return np.maximum(np.ceil(share * n - 1e-9), np.minimum(2, n)).astype(np.int64)
-
-
-def _xyxy(b: np.ndarray) -> np.ndarray:
-    return np.concatenate([b[..., :2], b[..., :2] + b[..., 2:]], axis=-1)
-
-
-def _xywh(b: np.ndarray) -> np.ndarray:
-    return np.concatenate([b[..., :2], b[..., 2:] - b[..., :2]], axis=-1)
 
 
 def _frame(dataset: CocoDataset, kind: str, rows: np.ndarray, *, score: np.ndarray, evidence: list[str],
@@ -176,11 +169,11 @@ def loose_box_suspects(dataset: CocoDataset, late: LossLog, loc_pct: np.ndarray,
     rows = np.flatnonzero((n_valid > 0) & persistent & (loc_pct >= high_pct) & ~dataset.iscrowd)
     if not len(rows):
         return _frame(dataset, "loose_box", rows, score=np.zeros(0), evidence=[], action="replace_box")
-    pred = _xyxy(late.object_field("pred_box")[:, rows].astype(np.float64))   # [L, R, 4]
+    pred = xywh_to_xyxy(late.object_field("pred_box")[:, rows].astype(np.float64))   # [L, R, 4]
     pred[~in_range[:, rows]] = np.nan
-    suggested = _xywh(np.nanmedian(pred, axis=0))
-    ann = _xyxy(dataset.boxes[rows])
-    iou = pair_iou(np.concatenate([ann, _xyxy(suggested)]), np.arange(len(rows)), np.arange(len(rows)) + len(rows))
+    suggested = xyxy_to_xywh(np.nanmedian(pred, axis=0))
+    ann = xywh_to_xyxy(dataset.boxes[rows])
+    iou = pair_iou(np.concatenate([ann, xywh_to_xyxy(suggested)]), np.arange(len(rows)), np.arange(len(rows)) + len(rows))
     score = share[rows] * (1.0 - iou)
     evidence = [f"in {int(in_range[:, r].sum())} of {int(n_valid[r])} late epochs the predicted box overlapped the "
                 f"annotation with IoU {lo:.2f}-{hi:.2f} (median predicted box IoU {i:.2f}); loc_score at the "
@@ -214,7 +207,7 @@ def missing_box_suspects(dataset: CocoDataset, log: LossLog, epochs: list[int]) 
         return empty
     order = np.lexsort((epoch_pos[ok], image[ok]))
     epoch_pos, image, label, score, box = (a[ok][order] for a in (epoch_pos, image, label, score, box))
-    xyxy = _xyxy(box)
+    xyxy = xywh_to_xyxy(box)
     key = image          # cluster per image across classes: one place is one proposal, whatever class wins
     starts = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
     offsets = np.r_[starts, len(key)]
@@ -238,7 +231,7 @@ def missing_box_suspects(dataset: CocoDataset, log: LossLog, epochs: list[int]) 
     if summary.empty:
         return empty
     share = summary["epochs"].to_numpy() / len(epochs)
-    proposed = _xywh(summary[["x1", "y1", "x2", "y2"]].to_numpy())
+    proposed = xyxy_to_xywh(summary[["x1", "y1", "x2", "y2"]].to_numpy())
     labels = summary["label"].to_numpy()
     evidence = [f"a '{_name(dataset, lb)}' detection matching no annotation in {int(k)} of {len(epochs)} late "
                 f"epochs (mean score {s:.2f}) at [{b[0]:.0f}, {b[1]:.0f}, {b[2]:.0f}, {b[3]:.0f}]"

@@ -15,12 +15,8 @@ from sklearn.metrics import roc_auc_score
 import torch
 from torchvision.ops import box_iou
 
+from detdiff.boxes import xywh_to_xyxy
 from detdiff.train.loss_log import LossLog
-
-
-def _xywh_to_xyxy(b: np.ndarray) -> torch.Tensor:
-    b = torch.as_tensor(np.asarray(b, dtype=np.float64).reshape(-1, 4))
-    return torch.cat([b[:, :2], b[:, :2] + b[:, 2:]], dim=1)
 
 
 def auroc(scores: np.ndarray, positive: np.ndarray) -> float:
@@ -93,8 +89,8 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
             for i, (_, s) in enumerate(ranked.iterrows()):
                 same = truth_rows[truth_rows["image_id"] == s["image_id"]]
                 if len(same):
-                    iou = box_iou(_xywh_to_xyxy([s["x"], s["y"], s["w"], s["h"]]),
-                                  _xywh_to_xyxy(np.stack(same["bbox"].to_list())))
+                    iou = box_iou(torch.from_numpy(xywh_to_xyxy([[s["x"], s["y"], s["w"], s["h"]]])),
+                                  torch.from_numpy(xywh_to_xyxy(np.stack(same["bbox"].to_list()))))
                     hits[i] = bool((iou >= 0.5).any())
         else:
             hits = ranked["annotation_id"].isin(ids(kind)).to_numpy()

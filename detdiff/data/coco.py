@@ -22,6 +22,8 @@ from typing import Any
 
 import numpy as np
 
+from detdiff.boxes import xywh_to_xyxy
+
 
 class CocoFormatError(ValueError):
     """The file is not usable as COCO at all (not JSON, or not an object with COCO sections)."""
@@ -104,8 +106,7 @@ class CocoDataset:
 
     def boxes_xyxy(self) -> np.ndarray:
         """All boxes as ``[x1, y1, x2, y2]`` float64 [A, 4]."""
-        b = self.boxes
-        return np.concatenate([b[:, :2], b[:, :2] + b[:, 2:]], axis=1)
+        return xywh_to_xyxy(self.boxes)
 
     def subset_images(self, image_indices: np.ndarray) -> CocoDataset:
         """A dataset holding only the given images (rows), e.g. a shard for one process."""

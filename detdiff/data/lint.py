@@ -45,6 +45,7 @@ from typing import Any, Callable, Iterable, TextIO
 
 import numpy as np
 
+from detdiff.boxes import group_offsets, group_pairs, pair_iou, xywh_to_xyxy
 from detdiff.data.coco import (MAX_IMAGE_SIDE, CocoFormatError, UnsafeImagePath, check_coco_sections,
                                read_coco_json, resolve_image_path)
 
@@ -90,7 +91,6 @@ BOX_TOLERANCE_PX = 2.0
 BOX_TOLERANCE_FRACTION = 0.01
 AREA_TOLERANCE = 0.10
 NEAR_DUPLICATE_IOU = 0.95
-PAIR_CHUNK = 2_000_000          # box pairs compared at once in the near-duplicate search (memory bound)
 
 _MISSING = object()
 _OK, _ABSENT, _BAD = 0, 1, 2    # status of one field of one record
@@ -503,36 +503,6 @@ def _disagree(area: np.ndarray | float, reference: np.ndarray | float) -> np.nda
     return np.abs(area - reference) > AREA_TOLERANCE * np.maximum(np.maximum(area, reference), 1e-12)
 
 
-def _group_pairs(group: np.ndarray) -> Iterable[tuple[np.ndarray, np.ndarray]]:
-    """All index pairs (i < j) with equal ``group`` value in a sorted int array, in bounded chunks."""
-    n = len(group)
-    if n < 2:
-        return
-    starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
-    sizes = np.diff(np.r_[starts, n])
-    partners = np.repeat(starts + sizes, sizes) - np.arange(n) - 1      # later members of one's group
-    cum = np.cumsum(partners)
-    lo = 0
-    while lo < n:
-        done = cum[lo - 1] if lo else 0
-        hi = max(lo + 1, int(np.searchsorted(cum, done + PAIR_CHUNK, side="right")))
-        counts = partners[lo:hi]
-        left = np.repeat(np.arange(lo, hi), counts)
-        right = left + 1 + np.arange(len(left)) - np.repeat(np.cumsum(counts) - counts, counts)
-        if len(left):
-            yield left, right
-        lo = hi
-
-
-def _pair_iou(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """IoU of xywh boxes row by row: a, b float64 [P, 4] -> [P]."""
-    ix = np.minimum(a[:, 0] + a[:, 2], b[:, 0] + b[:, 2]) - np.maximum(a[:, 0], b[:, 0])
-    iy = np.minimum(a[:, 1] + a[:, 3], b[:, 1] + b[:, 3]) - np.maximum(a[:, 1], b[:, 1])
-    inter = np.clip(ix, 0, None) * np.clip(iy, 0, None)
-    union = a[:, 2] * a[:, 3] + b[:, 2] * b[:, 3] - inter
-    return inter / np.maximum(union, 1e-300)
-
-
 @dataclass
 class _Annotations:
     section: _Section
@@ -725,8 +695,11 @@ def _lint_duplicates(sec: _Section, usable: np.ndarray, image_row: np.ndarray, c
                   f"annotation {_record_label(sec, rows[run_start[k]])}" for k in dup.tolist()))
 
     flagged: dict[int, tuple[int, float]] = {}
-    for left, right in _group_pairs(group):
-        iou = _pair_iou(b[left], b[right])
+    xyxy = xywh_to_xyxy(b)
+    for left, right in group_pairs(group_offsets(group)):
+        later = left < right                             # each unordered pair once
+        left, right = left[later], right[later]
+        iou = pair_iou(xyxy, left, right)
         near = np.flatnonzero((iou > NEAR_DUPLICATE_IOU) & ~(b[left] == b[right]).all(axis=1))
         for k in near.tolist():
             flagged.setdefault(int(right[k]), (int(left[k]), float(iou[k])))

@@ -233,7 +233,7 @@ def main(argv: list[str] | None = None) -> int:
     ours, stock = OursTrainer(config, size, batch), StockTrainer(size, batch)
     t = interleaved({"ours": ours.step, "stock": stock.step}, warmup, max(3, rounds // 2))
     rows.append((f"train img/s, stock ssdlite320 at {size} px, batch {batch}", f"{batch / t['stock']:.1f}", ""))
-    rows.append((f"train img/s, ours (same rounds)", f"{batch / t['ours']:.1f}", ""))
+    rows.append(("train img/s, ours (same rounds)", f"{batch / t['ours']:.1f}", ""))
     rows.append(("speed ratio ours / stock", f"{t['stock'] / t['ours']:.1f}x", f">= {GOAL_VS_STOCK:.0f}"))
 
     width = max(len(r[0]) for r in rows)

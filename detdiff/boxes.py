@@ -1,0 +1,78 @@
+"""Box geometry shared by every stage: pure numpy functions on whole arrays, shapes in the docstrings.
+
+COCO xywh is converted to ``[x1, y1, x2, y2]`` with :func:`xywh_to_xyxy`; same-group pairs (boxes of one
+image, or of one image and class) are enumerated in bounded chunks by :func:`group_pairs` and compared
+with :func:`pair_iou`, so no stage needs a Python loop over boxes or a full IoU matrix per image.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+import numpy as np
+
+#: Pairs generated per chunk: bounds memory to a few hundred MB whatever the box count per group.
+PAIR_CHUNK = 2_000_000
+
+
+def xywh_to_xyxy(boxes: np.ndarray) -> np.ndarray:
+    """``[..., 4]`` xywh -> ``[..., 4]`` xyxy."""
+    boxes = np.asarray(boxes, dtype=np.float64)
+    return np.concatenate([boxes[..., :2], boxes[..., :2] + boxes[..., 2:]], axis=-1)
+
+
+def xyxy_to_xywh(boxes: np.ndarray) -> np.ndarray:
+    """``[..., 4]`` xyxy -> ``[..., 4]`` xywh."""
+    boxes = np.asarray(boxes, dtype=np.float64)
+    return np.concatenate([boxes[..., :2], boxes[..., 2:] - boxes[..., :2]], axis=-1)
+
+
+def group_offsets(sorted_keys: np.ndarray) -> np.ndarray:
+    """Offsets ``[G+1]`` of the runs of equal values in a sorted key array ``[N]`` (for :func:`group_pairs`)."""
+    keys = np.asarray(sorted_keys)
+    if not len(keys):
+        return np.zeros(1, dtype=np.int64)
+    starts = np.flatnonzero(np.r_[True, keys[1:] != keys[:-1]])
+    return np.r_[starts, len(keys)].astype(np.int64)
+
+
+def group_pairs(offsets: np.ndarray, *, chunk: int = PAIR_CHUNK) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Yield ``(rows_i, rows_j)`` int64 arrays of every ordered pair i != j of rows in the same group.
+
+    ``offsets [G+1]`` (starting at 0): rows ``offsets[g]:offsets[g+1]`` form group g. Pairs come ordered
+    by i, then j, in chunks of about ``chunk`` pairs; a row's pairs never span two chunks.
+    """
+    offsets = np.asarray(offsets, dtype=np.int64)
+    sizes = np.diff(offsets)
+    num_rows = int(offsets[-1])
+    if num_rows == 0:
+        return
+    group_of_row = np.repeat(np.arange(len(sizes)), sizes)
+    partners = sizes[group_of_row]                       # pairs of row r, self included: [R]
+    row_start = offsets[group_of_row]
+    cum = np.cumsum(partners)
+    first = 0
+    while first < num_rows:
+        base = cum[first - 1] if first else 0
+        last = max(int(np.searchsorted(cum, base + chunk, side="right")), first + 1)
+        rows = np.arange(first, last)
+        counts = partners[first:last]
+        rows_i = np.repeat(rows, counts)
+        starts = np.cumsum(counts) - counts
+        rows_j = np.repeat(row_start[first:last] - starts, counts) + np.arange(len(rows_i))
+        keep = rows_i != rows_j
+        yield rows_i[keep], rows_j[keep]
+        first = last
+
+
+def pair_iou(boxes_xyxy: np.ndarray, rows_i: np.ndarray, rows_j: np.ndarray) -> np.ndarray:
+    """IoU of ``boxes_xyxy[rows_i]`` with ``boxes_xyxy[rows_j]`` elementwise ``[P]`` (definition as in
+    torchvision.ops.box_iou, without the full matrix); 0 where the union is empty."""
+    a, b = boxes_xyxy[rows_i], boxes_xyxy[rows_j]
+    iw = np.clip(np.minimum(a[:, 2], b[:, 2]) - np.maximum(a[:, 0], b[:, 0]), 0, None)
+    ih = np.clip(np.minimum(a[:, 3], b[:, 3]) - np.maximum(a[:, 1], b[:, 1]), 0, None)
+    inter = iw * ih
+    area_a = (a[:, 2] - a[:, 0]) * (a[:, 3] - a[:, 1])
+    area_b = (b[:, 2] - b[:, 0]) * (b[:, 3] - b[:, 1])
+    union = area_a + area_b - inter
+    return np.divide(inter, union, out=np.zeros_like(inter), where=union > 0)

@@ -1,0 +1,40 @@
+"""Shared box geometry (detdiff/boxes.py) against torchvision and brute force."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+import torch
+from torchvision.ops import box_iou
+
+from detdiff.boxes import group_offsets, group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
+
+
+def test_pair_iou_matches_torchvision() -> None:
+    rng = np.random.default_rng(0)
+    a = np.c_[rng.uniform(0, 50, (200, 2)), rng.uniform(1, 30, (200, 2))]
+    b = np.c_[rng.uniform(0, 50, (200, 2)), rng.uniform(1, 30, (200, 2))]
+    both = xywh_to_xyxy(np.concatenate([a, b]))
+    rows = np.arange(200)
+    reference = box_iou(torch.from_numpy(both[:200]), torch.from_numpy(both[200:])).diagonal().numpy()
+    np.testing.assert_allclose(pair_iou(both, rows, rows + 200), reference, rtol=1e-12, atol=1e-12)  # torchvision
+    # CHECKS.md worked value: box_iou([0,0,10,10], [5,5,15,15]) = 1/7
+    two = xywh_to_xyxy(np.array([[0.0, 0, 10, 10], [5.0, 5, 10, 10]]))
+    assert pair_iou(two, np.array([0]), np.array([1]))[0] == pytest.approx(1 / 7)
+
+
+def test_unordered_pairs_from_sorted_keys_in_small_chunks() -> None:
+    groups = np.array([0, 0, 0, 0, 2, 5, 5, 5, 9])
+    found = {(int(i), int(j)) for left, right in group_pairs(group_offsets(groups), chunk=3)
+             for i, j in zip(left, right) if i < j}
+    brute = {(i, j) for i, j in itertools.combinations(range(len(groups)), 2) if groups[i] == groups[j]}
+    assert found == brute
+
+
+def test_box_format_round_trip() -> None:
+    xywh = np.array([[1.0, 2.0, 3.0, 4.0], [0.0, 0.0, 10.0, 5.0]])
+    assert xywh_to_xyxy(xywh).tolist() == [[1, 2, 4, 6], [0, 0, 10, 5]]
+    np.testing.assert_array_equal(xyxy_to_xywh(xywh_to_xyxy(xywh)), xywh)
+    assert group_offsets(np.array([], dtype=int)).tolist() == [0]

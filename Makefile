@@ -3,7 +3,7 @@ PY := $(VENV)/bin/python
 PIP := $(VENV)/bin/pip
 DEMO_DIR ?= demo_data
 RUN_DIR ?= runs/demo
-CONFIG ?= default
+CONFIG ?= topdown
 
 .PHONY: demo test bench install install-test clean
 

@@ -113,7 +113,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("annotations", type=Path)
     p.add_argument("--images", type=Path, required=True)
     p.add_argument("--out", type=Path, required=True, help="run folder for every result")
-    p.add_argument("--config", default=None, help="YAML file or a name in configs/ (default, fast, ci)")
+    p.add_argument("--config", default=None, help="YAML file or a name in configs/ (default, topdown, fast, ci)")
     p.add_argument("--epochs", type=int, default=None)
     p.add_argument("--image-size", type=int, default=None, help="side of the letterboxed training view, px")
     p.add_argument("--batch-size", type=int, default=None)

@@ -9,7 +9,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import torch
 from pycocotools.coco import COCO
+from torchvision.ops import box_convert, box_iou
 
 from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
 from detdiff.analysis.suspects import late_epochs, required_epochs
@@ -118,6 +120,10 @@ def test_wrong_class_suggests_the_persistent_other_class(run) -> None:
     assert found["annotation_id"].tolist() == [4]
     assert found["suggested_category_id"].tolist() == [DOG]      # real COCO id, not the index
     assert "'dog'" in found["evidence"].iloc[0] and "3 of 3 late epochs" in found["evidence"].iloc[0]
+    # score: confident learning's normalized margin (Northcutt et al., JAIR 2021), p(other) - p(label) from
+    # the logits 1.5 and -1.0 planted above; the sigmoid reference is torch.sigmoid
+    expected = float(torch.sigmoid(torch.tensor(1.5)) - torch.sigmoid(torch.tensor(-1.0)))
+    assert found["score"].iloc[0] == pytest.approx(expected, abs=1e-6)
 
 
 def test_missing_box_is_the_median_of_the_persistent_detections(run) -> None:
@@ -139,6 +145,11 @@ def test_loose_box_suggests_the_tighter_predicted_box(run) -> None:
     x, y, w, h = ds.boxes[plant["loose_box"]]
     got = found.iloc[0][["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].astype(float).to_numpy()
     np.testing.assert_allclose(got[:3], [x + 0.1 * w, y + 0.1 * h, 0.8 * w], atol=1e-3)
+    # score = share of late epochs (3 of 3) x (1 - IoU(annotation, suggestion)) x detector confidence (0.8
+    # planted); the IoU reference is torchvision.ops.box_iou
+    iou = box_iou(box_convert(torch.tensor([[x, y, w, h]], dtype=torch.float64), "xywh", "xyxy"),
+                  box_convert(torch.from_numpy(got[None].astype(np.float64)), "xywh", "xyxy"))
+    assert found.iloc[0]["score"] == pytest.approx(1.0 * (1 - float(iou)) * 0.8, abs=1e-5)
 
 
 def test_duplicate_flags_the_later_id(run) -> None:

@@ -5,7 +5,8 @@ loss alone, the image's box count, and random scores; and precision / recall at 
 Goals: wrong_class AUROC >= 0.95, loose_box >= 0.90, missing (image neg_score) >= 0.85,
 wrong_class precision@k >= 0.8.
 
-    .venv/bin/python tests/benchmarks/bench_validity.py [--num-images 300] [--config default] [--out DIR]
+    .venv/bin/python tests/benchmarks/bench_validity.py [--num-images 300] [--config topdown] [--out DIR]
+        [--set train.flips=both ...]
 """
 
 from __future__ import annotations
@@ -15,6 +16,8 @@ import json
 import tempfile
 import time
 from pathlib import Path
+
+import yaml
 
 from detdiff.analysis.validity import score_against_truth
 from detdiff.data.demo import generate_demo
@@ -26,16 +29,23 @@ GOALS = {"wrong_class": ("auroc", 0.95), "loose_box": ("auroc", 0.90), "missing_
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--num-images", type=int, default=300)
-    parser.add_argument("--config", default="default")
+    parser.add_argument("--config", default="topdown")
     parser.add_argument("--epochs", type=int, default=None)
     parser.add_argument("--out", type=Path, default=None)
+    parser.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                        help="config override, value read as YAML (repeatable)")
     args = parser.parse_args()
+    overrides: dict[str, dict] = {"train": {"epochs": args.epochs}}
+    for item in args.set:
+        dotted, _, value = item.partition("=")
+        section, _, key = dotted.partition(".")
+        overrides.setdefault(section, {})[key] = yaml.safe_load(value)
     out = args.out or Path(tempfile.mkdtemp(prefix="detdiff-validity-"))
     t0 = time.perf_counter()
     demo = generate_demo(out / "demo", num_images=args.num_images, seed=0, progress=False)
     t1 = time.perf_counter()
     run_audit(demo.annotations, demo.images_dir, out / "run", config_path=args.config,
-              overrides={"train": {"epochs": args.epochs}}, progress=False, make_report=False)
+              overrides=overrides, progress=False, make_report=False)
     t2 = time.perf_counter()
     scores = score_against_truth(out / "run", demo.truth)
     metrics = json.loads((out / "run" / "metrics.json").read_text())

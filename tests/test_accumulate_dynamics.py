@@ -10,7 +10,8 @@ import torch
 from detdiff.analysis.accumulate import (accumulate_over_epochs, image_scores, object_scores, percentile_rank,
                                          within_group_zscore)
 from detdiff.analysis.dynamics import (area_under_margin, data_map, data_map_regions, first_learned,
-                                       forgetting_events, learning_dynamics, never_learned, sigmoid)
+                                       forgetting_events, learning_dynamics, never_learned, other_class_lead,
+                                       sigmoid)
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog, LossLogWriter
 
 
@@ -140,3 +141,19 @@ def test_learning_dynamics_reads_the_log(tmp_path) -> None:
     np.testing.assert_allclose(t["aum"][:2], [-1.0, 4.0])
     assert t["confidence"][0] == pytest.approx(0.5) and np.isnan(t["confidence"][2])
     assert t["region"][2] == ""
+
+
+def test_other_class_lead_is_the_mean_probability_gap_over_valid_epochs() -> None:
+    # Worked by hand from the definition, sigmoid reference scipy.special.expit: object 0 has logits
+    # (label, other) = (-1, 1.5) and (0, 0) -> mean of (expit(1.5) - expit(-1), 0); object 1 is valid in
+    # epoch 0 only; object 2 never (NaN). Two low logits give a small lead whatever their gap.
+    from scipy.special import expit
+
+    label = np.array([[-1.0, 2.0, 0.0], [0.0, np.nan, 0.0]])
+    other = np.array([[1.5, -2.0, 0.0], [0.0, 5.0, 0.0]])
+    valid = np.array([[True, True, False], [True, False, False]])
+    lead = other_class_lead(label, other, valid)
+    assert lead[0] == pytest.approx((expit(1.5) - expit(-1.0)) / 2)
+    assert lead[1] == pytest.approx(expit(-2.0) - expit(2.0))
+    assert np.isnan(lead[2])
+    assert other_class_lead(np.array([[-6.0]]), np.array([[-3.0]]))[0] < 0.05 < (expit(1.5) - expit(-1.0))

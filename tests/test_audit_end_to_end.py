@@ -6,6 +6,8 @@ AUROC is computed with scikit-learn's roc_auc_score. Floors are modest (measured
 issue notes) because the detector trains for seconds. Both runs use the ci config with the default
 model width: with fewer than ~400 digit scenes the detector memorises the swapped labels within a dozen
 epochs and their loss falls back to that of clean boxes (measured: AUROC 0.72 at 160 scenes, 0.93 at 400).
+The digits run trains without flips: a mirrored digit is not the same digit (with horizontal flips the
+AUROC fell to 0.86), which is the README's rule for train.flips.
 """
 
 from __future__ import annotations
@@ -31,8 +33,8 @@ MODEL = {"model": {"width": 32, "head_width": 64}}     # the default width, at t
 def digits_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("digits")
     ann, images, swapped = build_digit_scenes(root, num_images=400, seed=0)
-    run_audit(ann, images, root / "run", config_path="ci", overrides={**MODEL, "train": {"epochs": 12}},
-              progress=False, make_report=False)
+    run_audit(ann, images, root / "run", config_path="ci",
+              overrides={**MODEL, "train": {"epochs": 12, "flips": "none"}}, progress=False, make_report=False)
     return open_run(root / "run"), swapped
 
 
@@ -65,13 +67,13 @@ def test_swapped_digits_are_suspected_with_the_true_class(digits_run) -> None:
 def test_demo_planted_wrong_classes_rank_above_clean_boxes(demo_run) -> None:
     run, demo = demo_run
     scores = score_against_truth(run.rundir, demo.truth)
-    assert scores["wrong_class"]["auroc"] > 0.75, scores["wrong_class"]   # measured 0.86
+    assert scores["wrong_class"]["auroc"] > 0.75, scores["wrong_class"]   # measured 0.88
     assert scores["wrong_class"]["auroc"] > scores["wrong_class"]["auroc_random"]
 
 
 def test_demo_detector_learned_something(demo_run) -> None:
     run, _ = demo_run
-    assert run.metrics["AP50"] > 0.4, run.metrics                        # measured 0.78
+    assert run.metrics["AP50"] > 0.4, run.metrics                        # measured 0.66
 
 
 def test_review_file_loads_in_pycocotools(demo_run) -> None:

@@ -15,7 +15,8 @@ from detdiff.model.losses import compute_loss_streams
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS
 
 LOSS_CFG = {"box_beta": 1 / 9, "box_variances": [0.1, 0.1, 0.2, 0.2], "classification": "focal",
-            "focal_alpha": 0.25, "focal_gamma": 2.0, "neg_pos_ratio": 3, "pos_iou": 0.5, "neg_iou": 0.4}
+            "focal_alpha": 0.25, "focal_gamma": 2.0, "neg_pos_ratio": 3, "pos_iou": 0.5, "neg_iou": 0.4,
+            "min_anchors": 1, "min_anchor_iou": 0.2}
 LOG_CFG = {"detect_iou": 0.5, "detect_score": 0.3, "unmatched_per_image": 3, "unmatched_min_score": 0.3,
            "unmatched_max_iou": 0.3}
 NUM_CLASSES = 3

@@ -97,6 +97,29 @@ def test_matching_hand_made_case() -> None:
     assert matched.tolist() == [0, 0, IGNORED, BACKGROUND, BACKGROUND, 1]
 
 
+def test_matching_gives_small_boxes_their_best_anchors() -> None:
+    # min_anchors: each box also claims its k highest-IoU anchors at IoU >= min_anchor_iou, never another
+    # box's positive. IoUs against the 8 x 8 box gt0 worked by hand (intersection / union) and checked with
+    # torchvision.ops.box_iou.
+    anchors = torch.tensor([
+        [0.0, 0, 10, 10],     # 64 / 100 = 0.64 -> positive 0 (>= 0.5)
+        [3.0, 0, 13, 10],     # 48 / 116 = 0.41 -> ignored under plain SSD, claimed as gt0's 2nd best
+        [5.0, 0, 15, 10],     # 32 / 132 = 0.24 -> background under SSD, claimed as 3rd best
+        [7.0, 0, 17, 10],     # 16 / 148 = 0.11 (4th: not claimed with k = 3)
+        [40.0, 40, 50, 50],   # = gt1 -> positive 1
+        [42.0, 40, 52, 50],   # IoU 0.67 with gt1 -> positive 1 already; must stay 1
+    ])
+    gt = torch.tensor([[1.0, 1, 9, 9], [40.0, 40, 50, 50]])
+    iou = box_iou(anchors, gt)[:, 0]
+    torch.testing.assert_close(iou[:4], torch.tensor([64 / 100, 48 / 116, 32 / 132, 16 / 148]))
+    plain = match_anchors(anchors, gt, 0.5, 0.4)
+    assert plain.tolist() == [0, IGNORED, BACKGROUND, BACKGROUND, 1, 1]
+    three = match_anchors(anchors, gt, 0.5, 0.4, min_anchors=3, min_anchor_iou=0.2)
+    assert three.tolist() == [0, 0, 0, BACKGROUND, 1, 1]
+    high_floor = match_anchors(anchors, gt, 0.5, 0.4, min_anchors=3, min_anchor_iou=0.3)
+    assert high_floor.tolist() == [0, 0, BACKGROUND, BACKGROUND, 1, 1]
+
+
 def test_matching_without_boxes_is_all_background() -> None:
     anchors = random_boxes(10, 5)
     matched = match_anchors(anchors, torch.zeros((0, 4)), 0.5, 0.4)
@@ -116,7 +139,8 @@ def test_batched_matching_equals_per_image(counts: list[int], seed: int) -> None
         pad[k, : len(g)] = g
         valid[k, : len(g)] = True
     iou = box_iou(anchors, pad.reshape(-1, 4)).reshape(len(anchors), len(counts), width).permute(1, 0, 2)
-    matched, _ = match_batched(iou, valid, 0.5, 0.4)
-    for k, g in enumerate(gts):
-        single = match_anchors(anchors, g, 0.5, 0.4)
-        assert torch.equal(matched[k], single)
+    for k_min in (1, 3):
+        matched, _ = match_batched(iou, valid, 0.5, 0.4, min_anchors=k_min)
+        for k, g in enumerate(gts):
+            single = match_anchors(anchors, g, 0.5, 0.4, min_anchors=k_min)
+            assert torch.equal(matched[k], single)

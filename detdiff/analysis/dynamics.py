@@ -12,6 +12,10 @@ object was trained on (``object.num_anchors >= 0``); other epochs are skipped, n
 - Area under the margin (Pleiss et al., "Identifying Mislabeled Data using the Area Under the Margin
   Ranking", NeurIPS 2020): mean over epochs of (labelled-class logit - largest other-class logit); low or
   negative AUM points at a wrong label.
+- Other-class lead (ours, after the "normalized margin" ranking of confident learning, Northcutt et al.,
+  JAIR 2021): mean over the late epochs of p(strongest other class) - p(labelled class), sigmoid
+  probabilities in [-1, 1]; positive = the detector sees another class on the box. Unlike the logit margin
+  it stays small where both probabilities are small: a box the detector cannot judge is not accused.
 """
 
 from __future__ import annotations
@@ -105,6 +109,15 @@ def sigmoid(x: np.ndarray) -> np.ndarray:
     x = np.asarray(x, dtype=np.float64)
     with np.errstate(invalid="ignore"):                 # NaN logits (epochs not trained) stay NaN
         return np.exp(-np.logaddexp(0.0, -x))
+
+
+def other_class_lead(logit_label: np.ndarray, logit_other: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
+    """Mean over valid epochs of ``sigmoid(logit_other) - sigmoid(logit_label)`` ``[E, A] -> [A]``; NaN if none."""
+    lead = sigmoid(logit_other) - sigmoid(logit_label)
+    ok = _valid_or_all(lead, valid) & np.isfinite(lead)
+    n = ok.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, np.where(ok, lead, 0.0).sum(axis=0) / n, np.nan)
 
 
 def learning_dynamics(log: LossLog) -> pd.DataFrame:

@@ -11,9 +11,10 @@ crowd the top of every stream; the score then ranks within the gate.
 - wrong_class: pos_score above its gate, and in >= ``analysis.wrong_class_min_epochs`` of the late epochs
   another class wins on the box: the best matched anchor predicts another class with IoU >= 0.5, or the
   strongest other class's logit beats the labelled one. Suggestion: the class that won most often.
-  score = mean over late epochs of p(strongest other class) - p(labelled class), sigmoid probabilities of
-  the matched anchors' mean logits: the "normalized margin" ranking of confident learning (Northcutt et
-  al., JAIR 2021), in [-1, 1]. On the demo it put more planted faults in the top k than the mean logit
+  score = the object's ``other_class_lead`` (:func:`detdiff.analysis.dynamics.other_class_lead`): mean over
+  late epochs of p(strongest other class) - p(labelled class), sigmoid probabilities of the matched
+  anchors' mean logits, after the "normalized margin" ranking of confident learning (Northcutt et al.,
+  JAIR 2021), in [-1, 1]. On the demo it put more planted faults in the top k than the mean logit
   margin (0.70 vs 0.64, issue notes): a small box with two low logits has a large logit gap but a small
   probability gap, and that is the box the detector cannot judge.
 - missing_box: confident detections that match no annotation (``LossLog.unmatched``), clustered across
@@ -39,7 +40,7 @@ import scipy.sparse.csgraph
 
 from detdiff.analysis.descriptors import PairwiseOverlap
 from detdiff.boxes import group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
-from detdiff.analysis.dynamics import sigmoid
+from detdiff.analysis.dynamics import other_class_lead, sigmoid
 from detdiff.data.coco import CocoDataset
 from detdiff.train.loss_log import LossLog
 
@@ -153,7 +154,7 @@ def wrong_class_suspects(dataset: CocoDataset, late: LossLog, pos_pct: np.ndarra
     p_other = np.nanmean(np.where(v, sigmoid(logit_other[:, rows]), np.nan), axis=0)
     p_label = np.nanmean(np.where(v, sigmoid(logit_label[:, rows]), np.nan), axis=0)
     iou = np.nanmean(np.where(won[:, rows], pred_iou[:, rows], np.nan), axis=0)
-    score = p_other - p_label
+    score = other_class_lead(logit_label[:, rows], logit_other[:, rows], v)
     evidence = [f"the detector preferred '{_name(dataset, s)}' over the labelled '{_name(dataset, labels[r])}' in "
                 f"{int(won[:, r].sum())} of {int(n_valid[r])} late epochs (mean IoU {i:.2f}; mean probability "
                 f"{po:.2f} for the strongest other class vs {pl:.2f} for the label); pos_score at the "
@@ -184,7 +185,8 @@ def loose_box_suspects(dataset: CocoDataset, late: LossLog, loc_pct: np.ndarray,
     pred[~in_range[:, rows]] = np.nan
     suggested = xyxy_to_xywh(np.nanmedian(pred, axis=0))
     ann = xywh_to_xyxy(dataset.boxes[rows])
-    iou = pair_iou(np.concatenate([ann, xywh_to_xyxy(suggested)]), np.arange(len(rows)), np.arange(len(rows)) + len(rows))
+    pairs = np.arange(len(rows))
+    iou = pair_iou(np.concatenate([ann, xywh_to_xyxy(suggested)]), pairs, pairs + len(rows))
     labelled = late.object_field("pred_label")[:, rows] == dataset.labels[rows]
     seen = np.where(labelled, late.object_field("pred_score")[:, rows], 0.0)
     confidence = np.nanmean(np.where(valid[:, rows], seen, np.nan), axis=0)

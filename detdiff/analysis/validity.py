@@ -69,6 +69,12 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
             "auroc_box_count": auroc(box_count.reindex(sub["image_id"]).to_numpy(), pos),
             "auroc_random": auroc(rng.random(len(sub)), pos),
         }
+    if "other_class_lead" in objects:          # the ranking behind the wrong_class suspects, all objects
+        planted = ids("wrong_class")
+        mask = objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)
+        sub = objects[mask]
+        out["wrong_class"]["auroc_other_class_lead"] = auroc(sub["other_class_lead"].to_numpy(),
+                                                             sub["annotation_id"].isin(planted).to_numpy())
     missing_images = ids("missing_box", "image_id")
     pos = images["image_id"].isin(missing_images).to_numpy()
     out["missing_box"] = {
@@ -99,6 +105,6 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
         if kind == "wrong_class" and planted:
             correct = ranked.merge(faults[faults["kind"] == kind][["annotation_id", "true_category_id"]],
                                    on="annotation_id")
-            out[kind]["suggestion_accuracy"] = float(
-                (correct["suggested_category_id"] == correct["true_category_id"]).mean()) if len(correct) else float("nan")
+            agree = correct["suggested_category_id"] == correct["true_category_id"]
+            out[kind]["suggestion_accuracy"] = float(agree.mean()) if len(correct) else float("nan")
     return out

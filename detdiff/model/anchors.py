@@ -51,14 +51,20 @@ def make_anchors(image_size: int, strides: Sequence[int], sizes: Sequence[float]
     return torch.cat(levels)
 
 
-def match_batched(iou: torch.Tensor, gt_valid: torch.Tensor, pos_iou: float,
-                  neg_iou: float) -> tuple[torch.Tensor, torch.Tensor]:
+def match_batched(iou: torch.Tensor, gt_valid: torch.Tensor, pos_iou: float, neg_iou: float, *,
+                  min_anchors: int = 1, min_anchor_iou: float = 0.2) -> tuple[torch.Tensor, torch.Tensor]:
     """SSD matching for a padded batch: ``iou [B, N, G]``, ``gt_valid bool [B, G]``.
 
     Returns ``matched [B, N]`` (states as in the module docstring) and ``gt_best_anchor [B, G]`` (each box's
     highest-IoU anchor). Positive when IoU >= ``pos_iou``; additionally each valid box claims its highest-IoU
     anchor (if that IoU is > 0) so that every box has at least one positive (Liu et al., SSD, ECCV 2016,
     "matching strategy"); when two boxes claim the same anchor one of them wins.
+
+    ``min_anchors > 1`` (ours, in the spirit of ATSS, Zhang et al., CVPR 2020, which adapts the IoU threshold
+    to each box): each box also claims its ``min_anchors`` highest-IoU anchors that reach ``min_anchor_iou``
+    and are not positive for another box. A box smaller than the anchor grid (about 10 px at stride 8)
+    reaches IoU 0.5 with one anchor at most; on the demo three anchors raised AP50 on small objects from
+    0.52-0.54 to 0.62-0.63 (two seeds, issue notes).
     """
     batch, num_anchors, num_gt = iou.shape
     matched = torch.full((batch, num_anchors), BACKGROUND, dtype=torch.int64, device=iou.device)
@@ -71,11 +77,18 @@ def match_batched(iou: torch.Tensor, gt_valid: torch.Tensor, pos_iou: float,
     gt_best_iou, gt_best_anchor = iou.max(dim=1)                         # [B, G]
     force = gt_valid & (gt_best_iou > 0)
     b_idx, g_idx = force.nonzero(as_tuple=True)
+    if min_anchors > 1:
+        top_iou, top_anchor = iou.topk(min(int(min_anchors), num_anchors), dim=1)     # [B, k, G]
+        kb, kk, kg = ((top_iou >= min_anchor_iou) & gt_valid[:, None, :]).nonzero(as_tuple=True)
+        anchor = top_anchor[kb, kk, kg]
+        free = matched[kb, anchor] < 0                                   # never take another box's positive
+        matched[kb[free], anchor[free]] = kg[free]
     matched[b_idx, gt_best_anchor[b_idx, g_idx]] = g_idx
     return matched, gt_best_anchor
 
 
-def match_anchors(anchors: torch.Tensor, gt_boxes: torch.Tensor, pos_iou: float, neg_iou: float) -> torch.Tensor:
+def match_anchors(anchors: torch.Tensor, gt_boxes: torch.Tensor, pos_iou: float, neg_iou: float, *,
+                  min_anchors: int = 1, min_anchor_iou: float = 0.2) -> torch.Tensor:
     """Match anchors ``[N, 4]`` to one image's boxes ``[n, 4]`` (xyxy): ``matched_idxs [N]`` int64.
 
     Values: index of the matched box, :data:`BACKGROUND` or :data:`IGNORED` (see module docstring).
@@ -84,4 +97,5 @@ def match_anchors(anchors: torch.Tensor, gt_boxes: torch.Tensor, pos_iou: float,
         raise ValueError(f"loss.neg_iou ({neg_iou}) must not exceed loss.pos_iou ({pos_iou})")
     iou = box_iou(anchors, gt_boxes)                                     # [N, n]
     valid = torch.ones((1, gt_boxes.shape[0]), dtype=torch.bool, device=anchors.device)
-    return match_batched(iou.unsqueeze(0), valid, pos_iou, neg_iou)[0][0]
+    return match_batched(iou.unsqueeze(0), valid, pos_iou, neg_iou, min_anchors=min_anchors,
+                         min_anchor_iou=min_anchor_iou)[0][0]

@@ -124,7 +124,9 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
     gt_valid = torch.zeros((batch, max_gt), dtype=torch.bool, device=device)
     gt_valid[obj_image, obj_slot] = True
     iou = box_iou(anchors, gt_pad.reshape(-1, 4)).reshape(num_anchors, batch, max_gt).permute(1, 0, 2)
-    matched, gt_best_anchor = match_batched(iou, gt_valid, loss_cfg["pos_iou"], loss_cfg["neg_iou"])
+    matched, gt_best_anchor = match_batched(iou, gt_valid, loss_cfg["pos_iou"], loss_cfg["neg_iou"],
+                                            min_anchors=int(loss_cfg["min_anchors"]),
+                                            min_anchor_iou=float(loss_cfg["min_anchor_iou"]))
 
     positive = matched >= 0                                                                       # [B, N]
     background = matched == BACKGROUND

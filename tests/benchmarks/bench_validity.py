@@ -32,17 +32,18 @@ def main() -> None:
     parser.add_argument("--config", default="topdown")
     parser.add_argument("--epochs", type=int, default=None)
     parser.add_argument("--out", type=Path, default=None)
+    parser.add_argument("--seed", type=int, default=0, help="seed of the demo scenario and of training")
     parser.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                         help="config override, value read as YAML (repeatable)")
     args = parser.parse_args()
-    overrides: dict[str, dict] = {"train": {"epochs": args.epochs}}
+    overrides: dict[str, dict] = {"train": {"epochs": args.epochs, "seed": args.seed}}
     for item in args.set:
         dotted, _, value = item.partition("=")
         section, _, key = dotted.partition(".")
         overrides.setdefault(section, {})[key] = yaml.safe_load(value)
     out = args.out or Path(tempfile.mkdtemp(prefix="detdiff-validity-"))
     t0 = time.perf_counter()
-    demo = generate_demo(out / "demo", num_images=args.num_images, seed=0, progress=False)
+    demo = generate_demo(out / "demo", num_images=args.num_images, seed=args.seed, progress=False)
     t1 = time.perf_counter()
     run_audit(demo.annotations, demo.images_dir, out / "run", config_path=args.config,
               overrides=overrides, progress=False, make_report=False)
@@ -57,6 +58,9 @@ def main() -> None:
         fmt = lambda key: f"{s[key]:.3f}" if key in s and s[key] == s[key] else "  -  "
         print(f"{kind:<14}{s['planted']:>8}{s.get('stream', '-'):>11}{fmt('auroc'):>8}{fmt('auroc_last_epoch'):>9}"
               f"{fmt('auroc_box_count'):>8}{fmt('auroc_random'):>8}{fmt('precision_at_k'):>7}{fmt('recall_at_k'):>7}")
+    if "auroc_other_class_lead" in scores["wrong_class"]:
+        print(f"wrong_class AUROC of other_class_lead (the suspects' ranking, all objects): "
+              f"{scores['wrong_class']['auroc_other_class_lead']:.3f}")
     if "suggestion_accuracy" in scores["wrong_class"]:
         print(f"wrong_class suggested category correct: {scores['wrong_class']['suggestion_accuracy']:.3f}")
     for kind, (key, goal) in GOALS.items():

@@ -290,7 +290,7 @@ def test_partial_run_folder_still_reports(tmp_path):
     _, parsed = _parse(page)
     decoded = " ".join(parsed.text)
     assert "No cause statistics for this stream." in decoded and "No training log" in decoded
-    assert "Suspected label errors: 0 wrong_class" in terminal_summary(rundir)
+    assert "Suspected label errors (ranked by evidence, review from the top): 0 wrong_class" in terminal_summary(rundir)
     with pytest.raises(FileNotFoundError, match="images.csv"):
         write_report(tmp_path / "nowhere")
 

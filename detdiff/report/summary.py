@@ -425,7 +425,7 @@ def terminal_summary(rundir: str | Path) -> str:
         lines.append(f"  {STREAM_TITLES[stream].lower():<{width}}  {plain('; '.join(parts)) or 'none significant'}")
     kinds = run.suspects["kind"].value_counts()
     counts = ", ".join(f"{int(kinds.get(kind, 0))} {kind}" for kind in SUSPECT_KINDS)
-    lines.append(f"Suspected label errors: {counts}")
+    lines.append(f"Suspected label errors (ranked by evidence, review from the top): {counts}")
     written = "" if run.report_path.exists() else " (not written yet)"
     lines.append(f"Report: {run.report_path}{written}")
     return "\n".join(lines)

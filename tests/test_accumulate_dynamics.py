@@ -9,9 +9,9 @@ import torch
 
 from detdiff.analysis.accumulate import (accumulate_over_epochs, image_scores, object_scores, percentile_rank,
                                          within_group_zscore)
-from detdiff.analysis.dynamics import (area_under_margin, data_map, data_map_regions, first_learned,
-                                       forgetting_events, learning_dynamics, never_learned, other_class_lead,
-                                       sigmoid)
+from detdiff.analysis.dynamics import (area_under_margin, box_disagreement, data_map, data_map_regions,
+                                       first_learned, forgetting_events, learning_dynamics, never_learned,
+                                       other_class_lead, sigmoid)
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog, LossLogWriter
 
 
@@ -157,3 +157,12 @@ def test_other_class_lead_is_the_mean_probability_gap_over_valid_epochs() -> Non
     assert lead[1] == pytest.approx(expit(-2.0) - expit(2.0))
     assert np.isnan(lead[2])
     assert other_class_lead(np.array([[-6.0]]), np.array([[-3.0]]))[0] < 0.05 < (expit(1.5) - expit(-1.0))
+
+
+def test_box_disagreement_is_one_minus_the_mean_late_iou() -> None:
+    # Worked by hand from the definition: object 0 has IoUs 0.9 and 0.7 -> 1 - 0.8; object 1 is valid in
+    # epoch 0 only (0.5 -> 0.5); object 2 never (NaN).
+    iou = np.array([[0.9, 0.5, 0.8], [0.7, 0.1, np.nan]])
+    valid = np.array([[True, True, False], [True, False, False]])
+    np.testing.assert_allclose(box_disagreement(iou, valid)[:2], [0.2, 0.5])
+    assert np.isnan(box_disagreement(iou, valid)[2])

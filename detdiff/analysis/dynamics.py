@@ -16,6 +16,10 @@ object was trained on (``object.num_anchors >= 0``); other epochs are skipped, n
   JAIR 2021): mean over the late epochs of p(strongest other class) - p(labelled class), sigmoid
   probabilities in [-1, 1]; positive = the detector sees another class on the box. Unlike the logit margin
   it stays small where both probabilities are small: a box the detector cannot judge is not accused.
+- Box disagreement (ours): 1 - mean over the late epochs of the IoU between the detector's best matched
+  box and the annotation. A loose or shifted box keeps it high after the detector has learned where the
+  object's edges are; on the demo it ranked planted loose boxes at AUROC 0.88 (300 images) and 0.91
+  (1,000) where the accumulated box loss reached 0.82 and 0.86.
 """
 
 from __future__ import annotations
@@ -118,6 +122,15 @@ def other_class_lead(logit_label: np.ndarray, logit_other: np.ndarray, valid: np
     n = ok.sum(axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(n > 0, np.where(ok, lead, 0.0).sum(axis=0) / n, np.nan)
+
+
+def box_disagreement(pred_iou: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
+    """``1 - mean over valid epochs of pred_iou`` ``[E, A] -> [A]``; NaN where no valid epoch."""
+    iou = np.asarray(pred_iou, dtype=np.float64)
+    ok = _valid_or_all(iou, valid) & np.isfinite(iou)
+    n = ok.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, 1.0 - np.where(ok, iou, 0.0).sum(axis=0) / n, np.nan)
 
 
 def learning_dynamics(log: LossLog) -> pd.DataFrame:

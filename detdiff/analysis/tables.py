@@ -27,7 +27,7 @@ OBJECT_COLUMNS = ["annotation_id", "image_id", "category_id", "category_name", "
                   "pos_score", "loc_pct", "pos_pct", "loc_z", "pos_z", "first_learned", "forgetting_events",
                   "never_learned", "confidence", "variability", "correctness", "region", "aum", "area",
                   "size_bin", "rel_size", "aspect", "max_iou", "occlusion", "truncation", "class_freq",
-                  "feature_dist", "map_x", "map_y", "why", "other_class_lead"]
+                  "feature_dist", "map_x", "map_y", "why", "other_class_lead", "box_disagreement"]
 CLASS_COLUMNS = ["category_id", "category_name", "images", "objects", "median_loc_score", "median_pos_score",
                  "suspects", "suspect_share"]
 CSV_DECIMALS = 6
@@ -101,8 +101,10 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
                          f"the dataset {dataset.num_images} and {dataset.num_annotations}: not this dataset's run")
     learning = dynamics.learning_dynamics(log)
     late = LossLog(log.log_dir, suspects.late_epochs(log.epochs, float(cfg["late_fraction"])))
-    learning["other_class_lead"] = dynamics.other_class_lead(
-        late.object_field("logit_label"), late.object_field("logit_other"), late.object_field("num_anchors") >= 0)
+    trained = late.object_field("num_anchors") >= 0
+    learning["other_class_lead"] = dynamics.other_class_lead(late.object_field("logit_label"),
+                                                             late.object_field("logit_other"), trained)
+    learning["box_disagreement"] = dynamics.box_disagreement(late.object_field("pred_iou"), trained)
     overlap = descriptors.pairwise_overlap(dataset)
     obj_desc = descriptors.object_descriptors(dataset, overlap)
     obj_desc = pd.concat([obj_desc, _feature_descriptors(rundir / "object_features.npy", dataset)], axis=1)

@@ -75,6 +75,11 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
         sub = objects[mask]
         out["wrong_class"]["auroc_other_class_lead"] = auroc(sub["other_class_lead"].to_numpy(),
                                                              sub["annotation_id"].isin(planted).to_numpy())
+    if "box_disagreement" in objects:          # late-epoch 1 - IoU(predicted box, annotation), all objects
+        planted = ids("loose_box")
+        sub = objects[objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)]
+        out["loose_box"]["auroc_box_disagreement"] = auroc(sub["box_disagreement"].to_numpy(),
+                                                           sub["annotation_id"].isin(planted).to_numpy())
     missing_images = ids("missing_box", "image_id")
     pos = images["image_id"].isin(missing_images).to_numpy()
     out["missing_box"] = {

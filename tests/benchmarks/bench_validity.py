@@ -61,6 +61,9 @@ def main() -> None:
     if "auroc_other_class_lead" in scores["wrong_class"]:
         print(f"wrong_class AUROC of other_class_lead (the suspects' ranking, all objects): "
               f"{scores['wrong_class']['auroc_other_class_lead']:.3f}")
+    if "auroc_box_disagreement" in scores["loose_box"]:
+        print(f"loose_box AUROC of box_disagreement (late-epoch 1 - IoU with the detector's box, all objects): "
+              f"{scores['loose_box']['auroc_box_disagreement']:.3f}")
     if "suggestion_accuracy" in scores["wrong_class"]:
         print(f"wrong_class suggested category correct: {scores['wrong_class']['suggestion_accuracy']:.3f}")
     for kind, (key, goal) in GOALS.items():

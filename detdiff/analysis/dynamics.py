@@ -101,11 +101,17 @@ def data_map_regions(confidence: np.ndarray, variability: np.ndarray) -> np.ndar
 def area_under_margin(logit_label: np.ndarray, logit_other: np.ndarray,
                       valid: np.ndarray | None = None) -> np.ndarray:
     """Mean over valid epochs of ``logit_label - logit_other`` ``[A]``; NaN without a valid epoch."""
-    margin = np.asarray(logit_label, dtype=np.float64) - np.asarray(logit_other, dtype=np.float64)
-    ok = _valid_or_all(margin, valid) & np.isfinite(margin)
+    return mean_over_valid(np.asarray(logit_label, dtype=np.float64) - np.asarray(logit_other, dtype=np.float64),
+                           valid)
+
+
+def mean_over_valid(values: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
+    """``[E, A] -> [A]``: mean over the epochs that are valid and finite; NaN where there is none."""
+    values = np.asarray(values, dtype=np.float64)
+    ok = _valid_or_all(values, valid) & np.isfinite(values)
     n = ok.sum(axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(n > 0, np.where(ok, margin, 0.0).sum(axis=0) / n, np.nan)
+        return np.where(n > 0, np.where(ok, values, 0.0).sum(axis=0) / n, np.nan)
 
 
 def sigmoid(x: np.ndarray) -> np.ndarray:
@@ -117,20 +123,12 @@ def sigmoid(x: np.ndarray) -> np.ndarray:
 
 def other_class_lead(logit_label: np.ndarray, logit_other: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
     """Mean over valid epochs of ``sigmoid(logit_other) - sigmoid(logit_label)`` ``[E, A] -> [A]``; NaN if none."""
-    lead = sigmoid(logit_other) - sigmoid(logit_label)
-    ok = _valid_or_all(lead, valid) & np.isfinite(lead)
-    n = ok.sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(n > 0, np.where(ok, lead, 0.0).sum(axis=0) / n, np.nan)
+    return mean_over_valid(sigmoid(logit_other) - sigmoid(logit_label), valid)
 
 
 def box_disagreement(pred_iou: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
     """``1 - mean over valid epochs of pred_iou`` ``[E, A] -> [A]``; NaN where no valid epoch."""
-    iou = np.asarray(pred_iou, dtype=np.float64)
-    ok = _valid_or_all(iou, valid) & np.isfinite(iou)
-    n = ok.sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(n > 0, 1.0 - np.where(ok, iou, 0.0).sum(axis=0) / n, np.nan)
+    return 1.0 - mean_over_valid(pred_iou, valid)
 
 
 def learning_dynamics(log: LossLog) -> pd.DataFrame:

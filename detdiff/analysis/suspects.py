@@ -40,7 +40,7 @@ import scipy.sparse.csgraph
 
 from detdiff.analysis.descriptors import PairwiseOverlap
 from detdiff.boxes import group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
-from detdiff.analysis.dynamics import other_class_lead, sigmoid
+from detdiff.analysis.dynamics import mean_over_valid, sigmoid
 from detdiff.data.coco import CocoDataset
 from detdiff.train.loss_log import LossLog
 
@@ -150,11 +150,10 @@ def wrong_class_suspects(dataset: CocoDataset, late: LossLog, pos_pct: np.ndarra
     cols = np.broadcast_to(np.arange(len(rows)), w.shape)[w]
     np.add.at(counts, (cols, winner[:, rows][w]), 1)
     suggested = counts.argmax(axis=1)
-    v = valid[:, rows]
-    p_other = np.nanmean(np.where(v, sigmoid(logit_other[:, rows]), np.nan), axis=0)
-    p_label = np.nanmean(np.where(v, sigmoid(logit_label[:, rows]), np.nan), axis=0)
-    iou = np.nanmean(np.where(won[:, rows], pred_iou[:, rows], np.nan), axis=0)
-    score = other_class_lead(logit_label[:, rows], logit_other[:, rows], v)
+    p_other = mean_over_valid(sigmoid(logit_other[:, rows]), valid[:, rows])
+    p_label = mean_over_valid(sigmoid(logit_label[:, rows]), valid[:, rows])
+    iou = mean_over_valid(pred_iou[:, rows], won[:, rows])
+    score = p_other - p_label             # = other_class_lead where both logits are finite
     evidence = [f"the detector preferred '{_name(dataset, s)}' over the labelled '{_name(dataset, labels[r])}' in "
                 f"{int(won[:, r].sum())} of {int(n_valid[r])} late epochs (mean IoU {i:.2f}; mean probability "
                 f"{po:.2f} for the strongest other class vs {pl:.2f} for the label); pos_score at the "
@@ -189,7 +188,7 @@ def loose_box_suspects(dataset: CocoDataset, late: LossLog, loc_pct: np.ndarray,
     iou = pair_iou(np.concatenate([ann, xywh_to_xyxy(suggested)]), pairs, pairs + len(rows))
     labelled = late.object_field("pred_label")[:, rows] == dataset.labels[rows]
     seen = np.where(labelled, late.object_field("pred_score")[:, rows], 0.0)
-    confidence = np.nanmean(np.where(valid[:, rows], seen, np.nan), axis=0)
+    confidence = mean_over_valid(seen, valid[:, rows])
     score = share[rows] * (1.0 - iou) * confidence
     evidence = [f"in {int(in_range[:, r].sum())} of {int(n_valid[r])} late epochs the predicted box overlapped the "
                 f"annotation with IoU {lo:.2f}-{hi:.2f} (median predicted box IoU {i:.2f}, mean detector "

@@ -528,7 +528,7 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
                          CheckpointHook(ckpt_path, {"dataset": dataset_key})]
     if progress and info.is_main:
         hooks.append(ProgressHook(epochs))
-    make_batch = BatchMaker(dataset, cache, info.device, flips=str(train_cfg.get("flips", "none")), seed=seed)
+    make_batch = BatchMaker(dataset, cache, info.device, flips=str(train_cfg["flips"]), seed=seed)
 
     epoch_seconds, data_seconds, images = [], 0.0, 0
     for epoch in range(start_epoch, epochs):

@@ -257,12 +257,17 @@ def missing_box_suspects(dataset: CocoDataset, log: LossLog, epochs: list[int]) 
                   score=share * summary["mean_score"].to_numpy(), evidence=evidence, action="add")
 
 
+def late_log(log: LossLog, late_fraction: float) -> LossLog:
+    """The log restricted to its :func:`late_epochs` (the window of every "persistent" test)."""
+    return LossLog(log.log_dir, late_epochs(log.epochs, late_fraction))
+
+
 def find_suspects(dataset: CocoDataset, log: LossLog, object_pct: pd.DataFrame, overlap: PairwiseOverlap,
                   analysis_cfg: dict) -> pd.DataFrame:
     """All four kinds, sorted by kind then score (descending). ``object_pct`` needs loc_pct and pos_pct
     per annotation row; ``analysis_cfg`` is the config's ``analysis`` section."""
-    epochs = late_epochs(log.epochs, float(analysis_cfg["late_fraction"]))
-    late = LossLog(log.log_dir, epochs)
+    late = late_log(log, float(analysis_cfg["late_fraction"]))
+    epochs = late.epochs
     loc_pct = object_pct["loc_pct"].to_numpy(dtype=np.float64)
     pos_pct = object_pct["pos_pct"].to_numpy(dtype=np.float64)
     frames = [

@@ -100,7 +100,7 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
         raise ValueError(f"{rundir / 'log'}: the log has {len(img_scores)} images and {len(obj_scores)} objects, "
                          f"the dataset {dataset.num_images} and {dataset.num_annotations}: not this dataset's run")
     learning = dynamics.learning_dynamics(log)
-    late = LossLog(log.log_dir, suspects.late_epochs(log.epochs, float(cfg["late_fraction"])))
+    late = suspects.late_log(log, float(cfg["late_fraction"]))
     trained = late.object_field("num_anchors") >= 0
     learning["other_class_lead"] = dynamics.other_class_lead(late.object_field("logit_label"),
                                                              late.object_field("logit_other"), trained)

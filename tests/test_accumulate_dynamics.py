@@ -59,12 +59,15 @@ def test_object_scores_percentiles_and_class_z(tmp_path) -> None:
     num = 40
     labels = rng.integers(0, 3, num)
     epochs = [{"images": [0], "objects": np.arange(num), "object.loc_sum": rng.uniform(0, 2, num),
-               "object.cls_sum": rng.uniform(0, 2, num), "object.num_anchors": rng.integers(0, 5, num)}
+               "object.cls_sum": rng.uniform(0, 2, num), "object.num_anchors": rng.integers(0, 5, num),
+               "object.loc_kept": rng.uniform(0, 1, num), "object.cls_kept": rng.uniform(0, 1, num)}
               for _ in range(3)]
     log = _write(tmp_path, epochs, num_images=1, num_objects=num)
     t = object_scores(log, labels, 3)
-    expected = sum(e["object.cls_sum"] / np.maximum(1, e["object.num_anchors"]) for e in epochs)
-    np.testing.assert_allclose(t["pos_score"], expected, rtol=1e-6)
+    # scores: the kept anchor's losses summed over epochs; *_raw: the all-anchor sums summed over epochs
+    np.testing.assert_allclose(t["pos_score"], sum(e["object.cls_kept"] for e in epochs), rtol=1e-6)
+    np.testing.assert_allclose(t["loc_score"], sum(e["object.loc_kept"] for e in epochs), rtol=1e-6)
+    np.testing.assert_allclose(t["loc_raw"], sum(e["object.loc_sum"] for e in epochs), rtol=1e-6)
     # reference: scipy.stats.percentileofscore(kind="mean") and scipy.stats.zscore (ddof=0) within each class
     ref_pct = [scipy.stats.percentileofscore(t["pos_score"], v, kind="mean") for v in t["pos_score"]]
     np.testing.assert_allclose(t["pos_pct"], ref_pct)

@@ -140,6 +140,38 @@ def test_object_sums_add_up_to_image_positive_streams(kind: str) -> None:
 
 
 @pytest.mark.parametrize("kind", ["focal", "hard_negative"])
+def test_kept_anchor_losses_match_torch_at_the_anchor_of_pred_box(kind: str) -> None:
+    # The kept anchor is the matched anchor of highest class score; its box is pred_box. Reference: recompute
+    # both losses there with torch.nn.functional.smooth_l1_loss and torchvision's sigmoid_focal_loss / BCE.
+    cfg = loss_cfg(classification=kind, min_anchors=3)
+    outputs, targets = make_batch([4, 2, 5], seed=8, logit_scale=2.0)
+    obj = compute_loss_streams(outputs, ANCHORS, targets, cfg, LOG_CFG).objects
+    coder = BoxCoder(cfg["box_variances"])
+    logits, deltas = outputs["cls_logits"].detach(), outputs["box_deltas"].detach()
+    row = 0
+    for b, t in enumerate(targets):
+        iou = box_iou(ANCHORS, t["boxes"])
+        matched = iou.argmax(1)
+        for j in range(len(t["labels"])):
+            decoded = coder.decode(deltas[b], ANCHORS)
+            candidates = ((box_iou(decoded, t["boxes"][j:j + 1])[:, 0] - obj["pred_iou"][row]).abs() < 1e-6) & (
+                (logits[b].sigmoid().amax(1) - obj["pred_score"][row]).abs() < 1e-7) & (matched == j)
+            n = int(candidates.nonzero()[0])
+            torch.testing.assert_close(decoded[n], obj["pred_box"][row])
+            target = coder.encode(t["boxes"][j:j + 1], ANCHORS[n:n + 1])[0]
+            loc = F.smooth_l1_loss(deltas[b, n], target, beta=cfg["box_beta"], reduction="sum")
+            onehot = F.one_hot(t["labels"][j], NUM_CLASSES).float()
+            if kind == "focal":
+                cls = sigmoid_focal_loss(logits[b, n], onehot, cfg["focal_alpha"], cfg["focal_gamma"], reduction="sum")
+            else:
+                cls = F.binary_cross_entropy_with_logits(logits[b, n], onehot, reduction="sum")
+            torch.testing.assert_close(obj["loc_kept"][row], loc, rtol=1e-5, atol=1e-6)
+            torch.testing.assert_close(obj["cls_kept"][row], cls, rtol=1e-5, atol=1e-6)
+            row += 1
+    assert (obj["loc_kept"] <= obj["loc_sum"] + 1e-6).all() and (obj["cls_kept"] <= obj["cls_sum"] + 1e-6).all()
+
+
+@pytest.mark.parametrize("kind", ["focal", "hard_negative"])
 def test_image_without_targets_has_zero_box_and_positive_loss(kind: str) -> None:
     # as torchvision's test_models_detection_negative_samples: no boxes -> no box loss, no positive loss
     outputs, targets = make_batch([0, 0], seed=4)
@@ -195,6 +227,13 @@ def test_object_that_lost_its_anchor_still_gets_a_prediction() -> None:
     assert obj["num_anchors"].tolist() == [0, 1]
     assert obj["loc_sum"][0].item() == 0.0 and obj["cls_sum"][0].item() == 0.0
     torch.testing.assert_close(obj["pred_box"][0], anchors[0])
+    # its kept-anchor losses are measured at that anchor against its own box and label (torch references)
+    coder = BoxCoder(LOSS_CFG["box_variances"])
+    loc = F.smooth_l1_loss(torch.zeros(4), coder.encode(targets[0]["boxes"][:1], anchors[:1])[0],
+                           beta=LOSS_CFG["box_beta"], reduction="sum")
+    cls = sigmoid_focal_loss(outputs["cls_logits"][0, 0], torch.tensor([0.0, 1.0]), 0.25, 2.0, reduction="sum")
+    torch.testing.assert_close(obj["loc_kept"][0], loc)
+    torch.testing.assert_close(obj["cls_kept"][0], cls)
     assert obj["pred_iou"][0].item() == pytest.approx(0.3)
     assert obj["logit_label"][0].item() == -1.0 and obj["logit_other"][0].item() == 1.0
     assert obj["other_label"][0].item() == 0 and obj["pred_label"][0].item() == 0

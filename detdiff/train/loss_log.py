@@ -15,7 +15,8 @@ complete. With several processes each rank writes ``epoch_0003.rank<k>/`` and ra
 Stream normalisation: every ``*_sum`` field is a raw sum over anchors; ``image.num_pos`` and
 ``object.num_anchors`` are the counts. The training objective of an image is
 ``(loc_sum + pos_sum + neg_sum) / max(1, num_pos)`` (per image, never by batch history), and the
-per-object sums of an image add up to its ``loc_sum`` / ``pos_sum`` exactly.
+per-object sums of an image add up to its ``loc_sum`` / ``pos_sum`` exactly. ``object.loc_kept`` /
+``object.cls_kept`` are the losses of one anchor per object, the one whose box is ``pred_box``.
 """
 
 from __future__ import annotations
@@ -39,12 +40,14 @@ OBJECT_FIELDS: dict[str, tuple[str, tuple[int, ...], float]] = {
     "loc_sum": ("float32", (), np.nan),       # smooth L1 of the anchors matched to this object
     "cls_sum": ("float32", (), np.nan),       # classification loss of the anchors matched to this object
     "num_anchors": ("int32", (), -1),         # anchors matched to this object
+    "loc_kept": ("float32", (), np.nan),      # smooth L1 at the kept anchor (the matched one of top class score)
+    "cls_kept": ("float32", (), np.nan),      # classification loss at the kept anchor
     "logit_label": ("float32", (), np.nan),   # mean over matched anchors of the labelled-class logit
     "logit_other": ("float32", (), np.nan),   # largest other-class mean logit
     "other_label": ("int32", (), -1),         # category index of that strongest other class
-    "pred_box": ("float32", (4,), np.nan),    # best matched anchor's decoded box, xywh original px
+    "pred_box": ("float32", (4,), np.nan),    # kept anchor's decoded box, xywh original px
     "pred_iou": ("float32", (), np.nan),      # IoU of pred_box with the annotated box
-    "pred_label": ("int32", (), -1),          # class of the best matched anchor's top score
+    "pred_label": ("int32", (), -1),          # class of the kept anchor's top score
     "pred_score": ("float32", (), np.nan),    # that score (sigmoid probability)
     "detected": ("bool", (), False),          # pred_label == label, pred_iou >= detect_iou, score >= detect_score
 }
@@ -221,7 +224,12 @@ class LossLog:
         return len(self.epochs)
 
     def _stack(self, key: str) -> np.ndarray:
-        return np.stack([np.load(epoch_dir(self.log_dir, e) / f"{key}.npy", mmap_mode="r") for e in self.epochs])
+        paths = [epoch_dir(self.log_dir, e) / f"{key}.npy" for e in self.epochs]
+        for path in paths:
+            if not path.is_file():
+                raise FileNotFoundError(f"{path}: field {key!r} is missing from the training log (written by an "
+                                        "older detdiff?); run the audit again into a new run folder")
+        return np.stack([np.load(path, mmap_mode="r") for path in paths])
 
     def image_field(self, name: str) -> np.ndarray:
         """``image.<name>`` stacked over epochs: ``[E, I]``."""

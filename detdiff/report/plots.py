@@ -297,5 +297,5 @@ def _curve_panels(run: RunFolder, log: LossLog, stream: str) -> list[dict[str, A
             labels = [literal(f"#{k + 1} box {objects['annotation_id'].iloc[r]} '{objects['category_name'].iloc[r]}'")
                       for k, r in enumerate(rows)]
             panels.append({"values": object_values, "hardest": rows, "labels": labels, "title": "objects",
-                           "ylabel": f"{stream} loss / matched anchors"})
+                           "ylabel": f"{stream} loss at the kept anchor"})
     return panels

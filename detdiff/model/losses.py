@@ -234,16 +234,16 @@ def _object_records(logits: torch.Tensor, deltas: torch.Tensor, anchors: torch.T
                                                                       include_self=False)
     q_index = torch.arange(att_obj.shape[0], device=device)
     candidate = torch.where(att_score == best_score[att_obj], q_index, att_obj.shape[0])
-    best_q = torch.full((num_obj,), att_obj.shape[0], dtype=torch.int64, device=device)
-    best_q = best_q.scatter_reduce_(0, att_obj, candidate, "amin").clamp(max=max(att_obj.shape[0] - 1, 0))
-    best_b, best_n = att_b[best_q], att_n[best_q]
-    pred_box = coder.decode(deltas[best_b, best_n], anchors[best_n])
-    loc_kept = box_regression_loss(deltas[best_b, best_n], coder.encode(gt_boxes, anchors[best_n]), loss_cfg)
-    cls_kept = classification_loss(logits[best_b, best_n], F.one_hot(gt_labels, num_classes).to(logits.dtype),
+    kept_q = torch.full((num_obj,), att_obj.shape[0], dtype=torch.int64, device=device)
+    kept_q = kept_q.scatter_reduce_(0, att_obj, candidate, "amin").clamp(max=max(att_obj.shape[0] - 1, 0))
+    kept_b, kept_n = att_b[kept_q], att_n[kept_q]
+    pred_box = coder.decode(deltas[kept_b, kept_n], anchors[kept_n])
+    loc_kept = box_regression_loss(deltas[kept_b, kept_n], coder.encode(gt_boxes, anchors[kept_n]), loss_cfg)
+    cls_kept = classification_loss(logits[kept_b, kept_n], F.one_hot(gt_labels, num_classes).to(logits.dtype),
                                    loss_cfg)
     pred_iou = paired_box_iou(pred_box, gt_boxes)
-    pred_label = att_label[best_q]
-    pred_score = att_score[best_q]
+    pred_label = att_label[kept_q]
+    pred_score = att_score[kept_q]
     detected = (pred_label == gt_labels) & (pred_iou >= log_cfg["detect_iou"]) & (pred_score >= log_cfg["detect_score"])
     return {"loc_sum": loc_sum, "cls_sum": cls_sum, "num_anchors": num_anchors, "loc_kept": loc_kept,
             "cls_kept": cls_kept, "logit_label": logit_label,

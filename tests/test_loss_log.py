@@ -73,3 +73,17 @@ def test_overlapping_shards_are_refused(tmp_path) -> None:
         w.finalize()
     with pytest.raises(RuntimeError, match="more than one process"):
         merge_rank_epochs(tmp_path, 0, world_size=2)
+
+
+def test_field_missing_from_an_older_log_is_named(tmp_path) -> None:
+    w = LossLogWriter(tmp_path, num_images=2, num_objects=2)
+    for epoch in (0, 1):
+        w.reset(epoch)
+        image, objects, unmatched = _batch(np.array([0, 1]), np.array([0, 1]), 1.0)
+        w.process(np.array([0, 1]), image, np.array([0, 1]), objects, unmatched)
+        w.finalize()
+    (tmp_path / "epoch_0001" / "object.loc_kept.npy").unlink()     # as a log written before the field existed
+    log = LossLog.open(tmp_path)
+    with pytest.raises(FileNotFoundError, match=r"epoch_0001.*object\.loc_kept.*run the audit again"):
+        log.object_field("loc_kept")
+    assert log.object_field("loc_sum").shape == (2, 2)              # the other fields still read

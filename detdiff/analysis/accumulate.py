@@ -15,13 +15,13 @@ Per object (rows = annotation index ``[A]``), from ``object.<field> [E, A]``:
 the box regression and positive-class loss of the object's kept anchor: the matched anchor of highest class
 score, whose box the detector would output (see ``detdiff.model.losses``). The mean over all matched anchors
 (``*_sum / num_anchors``) also weighs the low-IoU anchors that small boxes are given, and ranked the demo's
-planted faults worse (loose boxes AUROC 0.82 vs 0.87, wrong classes 0.92 vs 0.94; issue notes).
+planted faults worse (loose boxes AUROC 0.82 vs 0.87, wrong classes 0.92 vs 0.93; issue notes).
 
 Epochs an item was not trained on hold NaN and are skipped: the score is the mean over covered epochs
 times the number of epochs, so a score stays comparable with items seen every epoch. Items never covered
 (unusable images, crowd annotations) score NaN. ``*_raw`` keeps the plain sums over covered epochs of the
-un-normalised ``*_sum`` fields (all anchors of the item); ``*_pct`` is the percentile rank within the stream (0-100) and, for
-objects, ``*_z`` the z-score within the object's class.
+un-normalised ``*_sum`` fields (all anchors of the item); ``*_pct`` is the percentile rank within the
+stream (0-100) and, for objects, ``*_z`` the z-score within the object's class.
 """
 
 from __future__ import annotations

@@ -101,21 +101,23 @@ def image_scores(log: LossLog, *, mined_background: bool = False) -> pd.DataFram
     return pd.DataFrame(table)
 
 
-def object_epoch_losses(log: LossLog) -> dict[str, np.ndarray]:
-    """Per-epoch object losses that the object scores accumulate: ``{"loc": [E, A], "pos": [E, A]}``, NaN
-    where an object was not trained in an epoch."""
-    return {"loc": log.object_field("loc_kept").astype(np.float64),
-            "pos": log.object_field("cls_kept").astype(np.float64)}
+#: object stream -> the per-epoch log field its score accumulates (the kept anchor's loss)
+OBJECT_STREAM_FIELDS = {"loc": "loc_kept", "pos": "cls_kept"}
+
+
+def object_epoch_loss(log: LossLog, stream: str) -> np.ndarray:
+    """Per-epoch loss ``[E, A]`` that an object stream (``"loc"`` or ``"pos"``) accumulates; NaN where an
+    object was not trained in an epoch."""
+    return log.object_field(OBJECT_STREAM_FIELDS[stream]).astype(np.float64)
 
 
 def object_scores(log: LossLog, labels: np.ndarray, num_classes: int) -> pd.DataFrame:
     """Accumulated object streams (rows = annotation index): loc/pos ``_score``, ``_pct``, ``_z`` (within
     the class of ``labels [A]``), ``_raw`` and ``epochs_covered``."""
     num_anchors = log.object_field("num_anchors")
-    per_epoch = object_epoch_losses(log)
     table = {}
     for stream, field in (("loc", "loc_sum"), ("pos", "cls_sum")):
-        score = accumulate_over_epochs(per_epoch[stream])
+        score = accumulate_over_epochs(object_epoch_loss(log, stream))
         table[f"{stream}_score"] = score
         table[f"{stream}_pct"] = percentile_rank(score)
         table[f"{stream}_z"] = within_group_zscore(score, labels, num_classes)

@@ -15,7 +15,7 @@ from sklearn.metrics import roc_auc_score
 import torch
 from torchvision.ops import box_iou
 
-from detdiff.analysis.accumulate import object_epoch_losses
+from detdiff.analysis.accumulate import object_epoch_loss
 from detdiff.boxes import xywh_to_xyxy
 from detdiff.train.loss_log import LossLog
 
@@ -47,8 +47,7 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
     suspects = pd.read_csv(rundir / "suspects.csv")
     rng = np.random.default_rng(seed)
     log = LossLog.open(rundir / "log")
-    per_epoch = object_epoch_losses(log)
-    last_obj_cls, last_obj_loc = per_epoch["pos"][-1], per_epoch["loc"][-1]
+    last_obj_cls, last_obj_loc = object_epoch_loss(log, "pos")[-1], object_epoch_loss(log, "loc")[-1]
     last_img_neg = log.image_field("neg_sum")[-1]
     box_count = images.set_index("image_id")["box_count"]
 

@@ -21,7 +21,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 
-from detdiff.analysis.accumulate import object_epoch_losses
+from detdiff.analysis.accumulate import object_epoch_loss
 from detdiff.report.summary import STREAM_TITLES, STREAMS, RunFolder, descriptor_words, rank_correlation
 from detdiff.train.loss_log import LossLog
 
@@ -62,10 +62,10 @@ def per_epoch_loss(log: LossLog, stream: str, level: str) -> np.ndarray:
     """Loss of every image (``level="image"``) or object per epoch, normalised as training does: ``[E, N]``.
 
     Images: ``<stream>_sum / max(1, num_pos)``. Objects: the kept anchor's loss
-    (:func:`detdiff.analysis.accumulate.object_epoch_losses`). Items not trained in an epoch are NaN.
+    (:func:`detdiff.analysis.accumulate.object_epoch_loss`). Items not trained in an epoch are NaN.
     """
     if level != "image":
-        return object_epoch_losses(log)[stream]
+        return object_epoch_loss(log, stream)
     sums = log.image_field(f"{stream}_sum").astype(np.float64)
     count = log.image_field("num_pos").astype(np.float64)
     return np.where(count >= 0, sums / np.maximum(1.0, count), np.nan)

@@ -271,6 +271,61 @@ def test_flip_view_boxes_matches_torchvision_v2_flips():
     assert torch.allclose(loop.flip_view_boxes(ours, flips, size), boxes)
 
 
+def test_flip_view_boxes_with_transpose_matches_torchvision_v2_rotate_and_flips():
+    # Reference: torchvision.transforms.v2.functional on tv_tensors.BoundingBoxes (XYXY, canvas S x S). On a
+    # square canvas the transpose (x <-> y) is vertical_flip(rotate(., 90)); checked on pixels first. The
+    # view is transposed, then mirrored; inverse=True must give the boxes back.
+    from torchvision import tv_tensors
+    from torchvision.transforms.v2 import functional as TF
+
+    size = 64
+    image = torch.zeros(1, size, size)
+    image[0, 10:20, 30:50] = 1.0
+    assert torch.equal(TF.vertical_flip(TF.rotate(image, 90)), image.transpose(1, 2))
+    gen = torch.Generator().manual_seed(1)
+    xy = torch.rand((60, 2), generator=gen) * 50
+    boxes = torch.cat([xy, xy + 1 + torch.rand((60, 2), generator=gen) * 13], dim=1)
+    flips = torch.rand((60, 3), generator=gen) < 0.5
+    ours = loop.flip_view_boxes(boxes, flips, size)
+    ref = tv_tensors.BoundingBoxes(boxes.clone(), format="XYXY", canvas_size=(size, size))
+    turned = TF.vertical_flip(TF.rotate(ref, 90))
+    expected = torch.where(flips[:, 2:], turned.as_subclass(torch.Tensor), boxes)
+    expected = tv_tensors.BoundingBoxes(expected, format="XYXY", canvas_size=(size, size))
+    expected = torch.where(flips[:, :1], TF.horizontal_flip(expected).as_subclass(torch.Tensor),
+                           expected.as_subclass(torch.Tensor))
+    expected = tv_tensors.BoundingBoxes(expected, format="XYXY", canvas_size=(size, size))
+    expected = torch.where(flips[:, 1:2], TF.vertical_flip(expected).as_subclass(torch.Tensor),
+                           expected.as_subclass(torch.Tensor))
+    assert torch.allclose(ours, expected)
+    assert torch.allclose(loop.flip_view_boxes(ours, flips, size, inverse=True), boxes)
+    assert flips[:, 2].any() and not torch.allclose(loop.flip_view_boxes(ours, flips, size), boxes)
+
+
+def test_batch_maker_dihedral_moves_pixels_and_boxes_together(tiny):
+    # The pixels under each target box before the transform are the pixels under its transformed box after
+    # it (same sum over the box's whole-pixel interior), for every drawn (h, v, transpose) combination.
+    ds, cache, _ = tiny
+    maker = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="dihedral", seed=0)
+    maker.set_epoch(1)
+    rows = np.flatnonzero(cache.usable)[:16]
+    batch = maker(rows)
+    plain = loop.BatchMaker(ds, cache, torch.device("cpu"))(rows)
+    assert batch.flips[:, 2].any() and not batch.flips[:, 2].all()
+    for b in range(len(rows)):
+        before, after = plain.targets[b]["boxes"], batch.targets[b]["boxes"]
+        for box0, box1 in zip(before, after):
+            x1, y1, x2, y2 = [int(v) for v in torch.cat([box0[:2].ceil(), box0[2:].floor()])]
+            u1, v1, u2, v2 = [int(v) for v in torch.cat([box1[:2].ceil(), box1[2:].floor()])]
+            if x2 > x1 and y2 > y1:
+                assert torch.isclose(plain.images[b][:, y1:y2, x1:x2].sum(), batch.images[b][:, v1:v2, u1:u2].sum())
+        flips = torch.from_numpy(np.repeat(batch.flips[b:b + 1], len(before), 0))
+        assert torch.allclose(batch.unflip(after, flips.numpy()), before, atol=1e-4)
+    both = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="both", seed=0)
+    both.set_epoch(1)
+    assert np.array_equal(both.epoch_flips[:, :2], maker.epoch_flips[:, :2])   # same flips as before the transpose
+    assert not both.epoch_flips[:, 2].any()
+
+
 def test_batch_maker_flips_pixels_and_boxes_together_and_reproducibly(tiny):
     ds, cache, _ = tiny
     maker = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="both", seed=0)
@@ -300,11 +355,12 @@ def test_batch_maker_flips_pixels_and_boxes_together_and_reproducibly(tiny):
         loop.BatchMaker(ds, cache, torch.device("cpu"), flips="sideways")
 
 
-def test_flipped_training_logs_boxes_in_original_coordinates(tiny, tmp_path):
+@pytest.mark.parametrize("flips", ["both", "dihedral"])
+def test_flipped_training_logs_boxes_in_original_coordinates(tiny, tmp_path, flips):
     # pred_iou is computed on the flipped view; recomputing it from the logged (flipped back) pred_box with
     # torchvision.ops.box_iou against the annotated box must give the same value.
     ds, cache, _ = tiny
-    train_and_log(ds, cache, _tiny_config(flips="both", epochs=3), tmp_path / "f", progress=False)
+    train_and_log(ds, cache, _tiny_config(flips=flips, epochs=3), tmp_path / "f", progress=False)
     log = LossLog.open(tmp_path / "f" / "log")
     trained = np.flatnonzero(log.object_field("num_anchors")[-1] >= 0)
     pred = torch.from_numpy(log.object_field("pred_box")[-1][trained].astype(np.float64))

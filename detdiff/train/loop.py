@@ -6,10 +6,11 @@ not inside the step (the split of torchvision's ``references/detection`` loop wi
 
 What is trained on is exactly what is logged: batches are read straight from the image cache's letterbox
 view (``detdiff.data.image_cache``). The only augmentation is flipping (``train.flips``: none, horizontal,
-or both axes), drawn per image and epoch from the seed; a flip maps the view onto itself, so an object's
-losses stay comparable across epochs, and logged boxes are flipped back before they are written. Flips
-halve (or quarter) how often the detector sees the identical view, which slows its memorising of wrong
-labels: on the demo's planted wrong classes they raised the accumulated positive-class AUROC (issue notes).
+both axes, or ``dihedral``: both axes and the transpose), drawn per image and epoch from the seed; each maps
+the square view and its anchor grid onto themselves, so an object's losses stay comparable across epochs,
+and logged boxes are mapped back before they are written. Flips halve (down to an eighth of) how often the
+detector sees the identical view, which slows its memorising of wrong labels: on the demo's planted wrong
+classes they raised the accumulated positive-class AUROC (issue notes).
 
 Reproducibility: ``torch.manual_seed(train.seed)`` before the model is built, the order of each epoch from
 ``numpy.random.Generator(PCG64([seed, epoch]))``, deterministic torch algorithms on CPU, and a fixed thread
@@ -86,37 +87,51 @@ class Batch:
     object_index: np.ndarray                 # int64 [T] = concatenation of the images' non-crowd annotation rows
     image_scale: np.ndarray                  # float64 [B] view px per original px
     object_scale: np.ndarray                 # float64 [T] scale of each target's image
-    flips: np.ndarray | None = None          # bool [B, 2] (horizontal, vertical) flip applied to each view
-    object_flips: np.ndarray | None = None   # bool [T, 2] flips of each target's image
+    flips: np.ndarray | None = None          # bool [B, 3] (horizontal, vertical, transpose) applied to each view
+    object_flips: np.ndarray | None = None   # bool [T, 3] flips of each target's image
 
     def unflip(self, boxes: torch.Tensor, flips: np.ndarray | None) -> torch.Tensor:
-        """``[n, 4]`` xyxy boxes on the flipped views -> boxes on the cache's views (``flips [n, 2]``)."""
+        """``[n, 4]`` xyxy boxes on the flipped views -> boxes on the cache's views (``flips [n, 3]``)."""
         if flips is None or not flips.any():
             return boxes
-        return flip_view_boxes(boxes, torch.from_numpy(flips).to(boxes.device), self.images.shape[-1])
+        return flip_view_boxes(boxes, torch.from_numpy(flips).to(boxes.device), self.images.shape[-1], inverse=True)
 
 
-FLIP_MODES = {"none": (False, False), "horizontal": (True, False), "both": (True, True)}
+#: ``train.flips`` -> which of (horizontal flip, vertical flip, transpose) may be drawn. ``dihedral`` adds the
+#: transpose (x <-> y) to both flips: the eight rotations and reflections of a square view.
+FLIP_MODES = {"none": (False, False, False), "horizontal": (True, False, False), "both": (True, True, False),
+              "dihedral": (True, True, True)}
 
 
-def flip_view_boxes(boxes: torch.Tensor, flips: torch.Tensor, size: int) -> torch.Tensor:
-    """Mirror ``[n, 4]`` xyxy boxes of an ``S x S`` view where ``flips [n, 2]`` (horizontal, vertical) is set.
+def flip_view_boxes(boxes: torch.Tensor, flips: torch.Tensor, size: int, *, inverse: bool = False) -> torch.Tensor:
+    """Map ``[n, 4]`` xyxy boxes of an ``S x S`` view onto its flipped view, ``flips [n, 2 or 3]`` = (horizontal,
+    vertical[, transpose]).
 
-    A flip is its own inverse, so this maps boxes onto flipped views and back.
+    The view is transposed first (x <-> y), then mirrored; ``inverse=True`` undoes that (mirror, then
+    transpose). Without a transpose the map is its own inverse.
     """
-    x1, y1, x2, y2 = boxes.unbind(-1)
-    h, v = flips[:, 0], flips[:, 1]
-    return torch.stack([torch.where(h, size - x2, x1), torch.where(v, size - y2, y1),
-                        torch.where(h, size - x1, x2), torch.where(v, size - y1, y2)], dim=-1)
+    def mirror(b: torch.Tensor) -> torch.Tensor:
+        x1, y1, x2, y2 = b.unbind(-1)
+        h, v = flips[:, 0], flips[:, 1]
+        return torch.stack([torch.where(h, size - x2, x1), torch.where(v, size - y2, y1),
+                            torch.where(h, size - x1, x2), torch.where(v, size - y1, y2)], dim=-1)
+
+    def transpose(b: torch.Tensor) -> torch.Tensor:
+        if flips.shape[-1] < 3 or not bool(flips[:, 2].any()):
+            return b
+        return torch.where(flips[:, 2:3], b[:, [1, 0, 3, 2]], b)
+
+    return transpose(mirror(boxes)) if inverse else mirror(transpose(boxes))
 
 
 class BatchMaker:
     """Builds :class:`Batch` es from the memmap: index, ``torch.from_numpy``, permute, ``/ 255``; no decode.
 
     Targets are the non-crowd annotations of each image, boxes ``xywh original -> xyxy view = xyxy * scale``.
-    ``flips`` (a :data:`FLIP_MODES` key): each allowed axis is flipped with probability 1/2 per image, drawn
-    by :meth:`set_epoch` from ``PCG64([seed, epoch, 1])`` for all images at once, so the draw does not
-    depend on batch order, rank or resumption.
+    ``flips`` (a :data:`FLIP_MODES` key): each allowed axis is flipped (and the view transposed) with
+    probability 1/2 per image, drawn by :meth:`set_epoch` from ``PCG64([seed, epoch, 1])`` (flips) and
+    ``PCG64([seed, epoch, 2])`` (transpose) for all images at once, so the draw does not depend on batch
+    order, rank or resumption, and ``both`` draws the same flips as before the transpose existed.
     """
 
     def __init__(self, dataset: CocoDataset, cache: ImageCache, device: torch.device, *,
@@ -137,7 +152,8 @@ class BatchMaker:
         """Draw this epoch's flips of every image (no-op without flips)."""
         if self.allowed.any():
             draw = np.random.default_rng([self.seed, epoch, 1]).random((self.cache.num_images, 2)) < 0.5
-            self.epoch_flips = draw & self.allowed
+            turn = np.random.default_rng([self.seed, epoch, 2]).random((self.cache.num_images, 1)) < 0.5
+            self.epoch_flips = np.hstack([draw, turn]) & self.allowed
 
     def __call__(self, image_index: np.ndarray) -> Batch:
         pixels = torch.from_numpy(np.ascontiguousarray(self.cache.images[image_index]))      # [B, S, S, 3] uint8
@@ -147,6 +163,9 @@ class BatchMaker:
         if self.epoch_flips is not None:      # flipped in uint8, before the copy to float: 4x fewer bytes
             flips = self.epoch_flips[image_index]
             object_flips = np.repeat(flips, counts, axis=0)
+            if flips[:, 2].any():                                     # transpose first, then mirror
+                which = torch.from_numpy(np.flatnonzero(flips[:, 2]))
+                pixels[which] = pixels[which].transpose(1, 2)
             for axis, dim in ((0, 2), (1, 1)):                       # x is dim 2 of [B, S, S, 3], y dim 1
                 if flips[:, axis].any():
                     which = torch.from_numpy(np.flatnonzero(flips[:, axis]))

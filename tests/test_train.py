@@ -249,56 +249,42 @@ def test_detector_learns_the_demo_and_final_pass_writes_coco_results(tmp_path):
         assert torch.equal(reloaded(images)["cls_logits"], result.model.eval()(images)["cls_logits"])
 
 
-def test_flip_view_boxes_matches_torchvision_v2_flips():
-    # Reference: torchvision.transforms.v2.functional.horizontal_flip / vertical_flip on tv_tensors.BoundingBoxes
-    # (XYXY, canvas S x S); a flip applied twice is the identity.
+def _torchvision_view_transform(boxes, flips, size):
+    """Reference for flip_view_boxes: torchvision.transforms.v2.functional on tv_tensors.BoundingBoxes (XYXY,
+    canvas S x S). On a square canvas the transpose (x <-> y) is vertical_flip(rotate(., 90)); the view is
+    transposed first (when ``flips`` has a third column), then mirrored horizontally, then vertically."""
     from torchvision import tv_tensors
     from torchvision.transforms.v2 import functional as TF
 
-    size = 64
-    gen = torch.Generator().manual_seed(0)
-    xy = torch.rand((40, 2), generator=gen) * 50
-    boxes = torch.cat([xy, xy + 1 + torch.rand((40, 2), generator=gen) * 13], dim=1)
-    flips = torch.rand((40, 2), generator=gen) < 0.5
-    ours = loop.flip_view_boxes(boxes, flips, size)
-    ref = tv_tensors.BoundingBoxes(boxes.clone(), format="XYXY", canvas_size=(size, size))
-    h, v = TF.horizontal_flip(ref), TF.vertical_flip(ref)
-    hv = TF.vertical_flip(h)
-    expected = torch.where(flips[:, :1] & flips[:, 1:], hv.as_subclass(torch.Tensor),
-                           torch.where(flips[:, :1], h.as_subclass(torch.Tensor),
-                                       torch.where(flips[:, 1:], v.as_subclass(torch.Tensor), boxes)))
-    assert torch.allclose(ours, expected)
-    assert torch.allclose(loop.flip_view_boxes(ours, flips, size), boxes)
+    steps = [(2, lambda b: TF.vertical_flip(TF.rotate(b, 90))), (0, TF.horizontal_flip), (1, TF.vertical_flip)]
+    out = boxes
+    for column, transform in steps:
+        if column < flips.shape[1]:
+            ref = tv_tensors.BoundingBoxes(out.clone(), format="XYXY", canvas_size=(size, size))
+            out = torch.where(flips[:, column:column + 1], transform(ref).as_subclass(torch.Tensor), out)
+    return out
 
 
-def test_flip_view_boxes_with_transpose_matches_torchvision_v2_rotate_and_flips():
-    # Reference: torchvision.transforms.v2.functional on tv_tensors.BoundingBoxes (XYXY, canvas S x S). On a
-    # square canvas the transpose (x <-> y) is vertical_flip(rotate(., 90)); checked on pixels first. The
-    # view is transposed, then mirrored; inverse=True must give the boxes back.
-    from torchvision import tv_tensors
+@pytest.mark.parametrize("axes", [2, 3])
+def test_flip_view_boxes_matches_torchvision_v2_rotate_and_flips(axes):
+    # Reference: _torchvision_view_transform (torchvision's rotate and flips), after checking on pixels that
+    # vertical_flip(rotate(., 90)) is the transpose. inverse=True must give the boxes back; without a
+    # transpose a flip is its own inverse.
     from torchvision.transforms.v2 import functional as TF
 
     size = 64
     image = torch.zeros(1, size, size)
     image[0, 10:20, 30:50] = 1.0
     assert torch.equal(TF.vertical_flip(TF.rotate(image, 90)), image.transpose(1, 2))
-    gen = torch.Generator().manual_seed(1)
+    gen = torch.Generator().manual_seed(axes)
     xy = torch.rand((60, 2), generator=gen) * 50
     boxes = torch.cat([xy, xy + 1 + torch.rand((60, 2), generator=gen) * 13], dim=1)
-    flips = torch.rand((60, 3), generator=gen) < 0.5
+    flips = torch.rand((60, axes), generator=gen) < 0.5
     ours = loop.flip_view_boxes(boxes, flips, size)
-    ref = tv_tensors.BoundingBoxes(boxes.clone(), format="XYXY", canvas_size=(size, size))
-    turned = TF.vertical_flip(TF.rotate(ref, 90))
-    expected = torch.where(flips[:, 2:], turned.as_subclass(torch.Tensor), boxes)
-    expected = tv_tensors.BoundingBoxes(expected, format="XYXY", canvas_size=(size, size))
-    expected = torch.where(flips[:, :1], TF.horizontal_flip(expected).as_subclass(torch.Tensor),
-                           expected.as_subclass(torch.Tensor))
-    expected = tv_tensors.BoundingBoxes(expected, format="XYXY", canvas_size=(size, size))
-    expected = torch.where(flips[:, 1:2], TF.vertical_flip(expected).as_subclass(torch.Tensor),
-                           expected.as_subclass(torch.Tensor))
-    assert torch.allclose(ours, expected)
+    assert torch.allclose(ours, _torchvision_view_transform(boxes, flips, size))
     assert torch.allclose(loop.flip_view_boxes(ours, flips, size, inverse=True), boxes)
-    assert flips[:, 2].any() and not torch.allclose(loop.flip_view_boxes(ours, flips, size), boxes)
+    if axes == 2:
+        assert torch.allclose(loop.flip_view_boxes(ours, flips, size), boxes)
 
 
 def test_batch_maker_dihedral_moves_pixels_and_boxes_together(tiny):

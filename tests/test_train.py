@@ -252,20 +252,19 @@ def test_detector_learns_the_demo_and_final_pass_writes_coco_results(tmp_path):
 def _torchvision_view_transform(boxes, flips, size):
     """Reference for flip_view_boxes: torchvision.transforms.v2.functional on tv_tensors.BoundingBoxes (XYXY,
     canvas S x S). On a square canvas the transpose (x <-> y) is vertical_flip(rotate(., 90)); the view is
-    transposed first (when ``flips`` has a third column), then mirrored horizontally, then vertically."""
+    transposed first (``flips[:, 2]``), then mirrored horizontally (``[:, 0]``), then vertically (``[:, 1]``)."""
     from torchvision import tv_tensors
     from torchvision.transforms.v2 import functional as TF
 
     steps = [(2, lambda b: TF.vertical_flip(TF.rotate(b, 90))), (0, TF.horizontal_flip), (1, TF.vertical_flip)]
     out = boxes
     for column, transform in steps:
-        if column < flips.shape[1]:
-            ref = tv_tensors.BoundingBoxes(out.clone(), format="XYXY", canvas_size=(size, size))
-            out = torch.where(flips[:, column:column + 1], transform(ref).as_subclass(torch.Tensor), out)
+        ref = tv_tensors.BoundingBoxes(out.clone(), format="XYXY", canvas_size=(size, size))
+        out = torch.where(flips[:, column:column + 1], transform(ref).as_subclass(torch.Tensor), out)
     return out
 
 
-@pytest.mark.parametrize("axes", [2, 3])
+@pytest.mark.parametrize("axes", [2, 3])   # 2: flips only (transpose column False), 3: with the transpose
 def test_flip_view_boxes_matches_torchvision_v2_rotate_and_flips(axes):
     # Reference: _torchvision_view_transform (torchvision's rotate and flips), after checking on pixels that
     # vertical_flip(rotate(., 90)) is the transpose. inverse=True must give the boxes back; without a
@@ -279,7 +278,8 @@ def test_flip_view_boxes_matches_torchvision_v2_rotate_and_flips(axes):
     gen = torch.Generator().manual_seed(axes)
     xy = torch.rand((60, 2), generator=gen) * 50
     boxes = torch.cat([xy, xy + 1 + torch.rand((60, 2), generator=gen) * 13], dim=1)
-    flips = torch.rand((60, axes), generator=gen) < 0.5
+    flips = torch.rand((60, 3), generator=gen) < 0.5
+    flips[:, 2] &= axes == 3
     ours = loop.flip_view_boxes(boxes, flips, size)
     assert torch.allclose(ours, _torchvision_view_transform(boxes, flips, size))
     assert torch.allclose(loop.flip_view_boxes(ours, flips, size, inverse=True), boxes)

@@ -104,8 +104,8 @@ FLIP_MODES = {"none": (False, False, False), "horizontal": (True, False, False),
 
 
 def flip_view_boxes(boxes: torch.Tensor, flips: torch.Tensor, size: int, *, inverse: bool = False) -> torch.Tensor:
-    """Map ``[n, 4]`` xyxy boxes of an ``S x S`` view onto its flipped view, ``flips [n, 2 or 3]`` = (horizontal,
-    vertical[, transpose]).
+    """Map ``[n, 4]`` xyxy boxes of an ``S x S`` view onto its flipped view, ``flips [n, 3]`` = (horizontal,
+    vertical, transpose).
 
     The view is transposed first (x <-> y), then mirrored; ``inverse=True`` undoes that (mirror, then
     transpose). Without a transpose the map is its own inverse.
@@ -117,8 +117,6 @@ def flip_view_boxes(boxes: torch.Tensor, flips: torch.Tensor, size: int, *, inve
                             torch.where(h, size - x1, x2), torch.where(v, size - y1, y2)], dim=-1)
 
     def transpose(b: torch.Tensor) -> torch.Tensor:
-        if flips.shape[-1] < 3 or not bool(flips[:, 2].any()):
-            return b
         return torch.where(flips[:, 2:3], b[:, [1, 0, 3, 2]], b)
 
     return transpose(mirror(boxes)) if inverse else mirror(transpose(boxes))

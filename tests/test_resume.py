@@ -16,7 +16,7 @@ from detdiff.config import load_config, save_config
 from detdiff.data.coco import build_dataset, read_coco_json
 from detdiff.data.demo import generate_demo
 from detdiff.data.image_cache import ImageCache, build_image_cache
-from detdiff.train import loop
+from detdiff.train import hooks, loop
 from detdiff.train.checkpoint import load_checkpoint
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog, finished_epochs
 from detdiff.train.loop import train_and_log
@@ -117,17 +117,17 @@ def test_sigkill_during_an_epoch_then_resume_equals_uninterrupted_run(setup, tmp
 def test_log_ahead_of_checkpoint_is_redone_on_resume(setup, tmp_path, monkeypatch):
     """A stop between an epoch's log rename and its checkpoint: the log epoch is discarded and redone."""
     paths, dataset, config, root, reference = setup
-    real_save = loop.save_checkpoint
+    real_save = hooks.save_checkpoint
 
     def stop_at_epoch_one(path, **kwargs):
         if kwargs["epoch"] == 1:
             raise KeyboardInterrupt
         return real_save(path, **kwargs)
 
-    monkeypatch.setattr(loop, "save_checkpoint", stop_at_epoch_one)
+    monkeypatch.setattr(hooks, "save_checkpoint", stop_at_epoch_one)
     with pytest.raises(KeyboardInterrupt):
         train_and_log(dataset, ImageCache.open(root / "cache"), config, tmp_path, progress=False)
-    monkeypatch.setattr(loop, "save_checkpoint", real_save)
+    monkeypatch.setattr(hooks, "save_checkpoint", real_save)
     assert finished_epochs(tmp_path / "log") == [0, 1]
     assert load_checkpoint(tmp_path / "checkpoint.pt")["epoch"] == 0
     result = train_and_log(dataset, ImageCache.open(root / "cache"), config, tmp_path, resume=True, progress=False)

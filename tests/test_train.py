@@ -19,6 +19,7 @@ from detdiff.data.coco import build_dataset, read_coco_json
 from detdiff.data.demo import generate_demo
 from detdiff.data.image_cache import InsufficientSpaceError, build_image_cache
 from detdiff.train import loop
+from detdiff.train.batches import BatchMaker, flip_view_boxes
 from detdiff.train.checkpoint import load_checkpoint, load_trained_model
 from detdiff.train.evaluate import coco_metrics, final_pass
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog, finished_epochs
@@ -280,22 +281,22 @@ def test_flip_view_boxes_matches_torchvision_v2_rotate_and_flips(axes):
     boxes = torch.cat([xy, xy + 1 + torch.rand((60, 2), generator=gen) * 13], dim=1)
     flips = torch.rand((60, 3), generator=gen) < 0.5
     flips[:, 2] &= axes == 3
-    ours = loop.flip_view_boxes(boxes, flips, size)
+    ours = flip_view_boxes(boxes, flips, size)
     assert torch.allclose(ours, _torchvision_view_transform(boxes, flips, size))
-    assert torch.allclose(loop.flip_view_boxes(ours, flips, size, inverse=True), boxes)
+    assert torch.allclose(flip_view_boxes(ours, flips, size, inverse=True), boxes)
     if axes == 2:
-        assert torch.allclose(loop.flip_view_boxes(ours, flips, size), boxes)
+        assert torch.allclose(flip_view_boxes(ours, flips, size), boxes)
 
 
 def test_batch_maker_dihedral_moves_pixels_and_boxes_together(tiny):
     # The pixels under each target box before the transform are the pixels under its transformed box after
     # it (same sum over the box's whole-pixel interior), for every drawn (h, v, transpose) combination.
     ds, cache, _ = tiny
-    maker = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="dihedral", seed=0)
+    maker = BatchMaker(ds, cache, torch.device("cpu"), flips="dihedral", seed=0)
     maker.set_epoch(1)
     rows = np.flatnonzero(cache.usable)[:16]
     batch = maker(rows)
-    plain = loop.BatchMaker(ds, cache, torch.device("cpu"))(rows)
+    plain = BatchMaker(ds, cache, torch.device("cpu"))(rows)
     assert batch.flips[:, 2].any() and not batch.flips[:, 2].all()
     for b in range(len(rows)):
         before, after = plain.targets[b]["boxes"], batch.targets[b]["boxes"]
@@ -306,7 +307,7 @@ def test_batch_maker_dihedral_moves_pixels_and_boxes_together(tiny):
                 assert torch.isclose(plain.images[b][:, y1:y2, x1:x2].sum(), batch.images[b][:, v1:v2, u1:u2].sum())
         flips = torch.from_numpy(np.repeat(batch.flips[b:b + 1], len(before), 0))
         assert torch.allclose(batch.unflip(after, flips.numpy()), before, atol=1e-4)
-    both = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="both", seed=0)
+    both = BatchMaker(ds, cache, torch.device("cpu"), flips="both", seed=0)
     both.set_epoch(1)
     assert np.array_equal(both.epoch_flips[:, :2], maker.epoch_flips[:, :2])   # same flips as before the transpose
     assert not both.epoch_flips[:, 2].any()
@@ -314,7 +315,7 @@ def test_batch_maker_dihedral_moves_pixels_and_boxes_together(tiny):
 
 def test_batch_maker_flips_pixels_and_boxes_together_and_reproducibly(tiny):
     ds, cache, _ = tiny
-    maker = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="both", seed=0)
+    maker = BatchMaker(ds, cache, torch.device("cpu"), flips="both", seed=0)
     maker.set_epoch(3)
     first = maker.epoch_flips.copy()
     maker.set_epoch(3)
@@ -323,7 +324,7 @@ def test_batch_maker_flips_pixels_and_boxes_together_and_reproducibly(tiny):
     assert not np.array_equal(first, maker.epoch_flips)
     rows = np.flatnonzero(cache.usable)[:8]
     batch = maker(rows)
-    plain = loop.BatchMaker(ds, cache, torch.device("cpu"))(rows)
+    plain = BatchMaker(ds, cache, torch.device("cpu"))(rows)
     for b in range(len(rows)):
         expected = plain.images[b]
         if batch.flips[b, 0]:
@@ -332,13 +333,13 @@ def test_batch_maker_flips_pixels_and_boxes_together_and_reproducibly(tiny):
             expected = expected.flip(-2)
         assert torch.equal(batch.images[b], expected)
         flips = torch.from_numpy(np.repeat(batch.flips[b:b + 1], len(plain.targets[b]["boxes"]), 0))
-        assert torch.allclose(batch.targets[b]["boxes"], loop.flip_view_boxes(plain.targets[b]["boxes"], flips, 64))
+        assert torch.allclose(batch.targets[b]["boxes"], flip_view_boxes(plain.targets[b]["boxes"], flips, 64))
     assert batch.flips.any() and not batch.flips.all()
-    horizontal = loop.BatchMaker(ds, cache, torch.device("cpu"), flips="horizontal")
+    horizontal = BatchMaker(ds, cache, torch.device("cpu"), flips="horizontal")
     horizontal.set_epoch(0)
     assert not horizontal.epoch_flips[:, 1].any()
     with pytest.raises(ValueError, match="train.flips"):
-        loop.BatchMaker(ds, cache, torch.device("cpu"), flips="sideways")
+        BatchMaker(ds, cache, torch.device("cpu"), flips="sideways")
 
 
 @pytest.mark.parametrize("flips", ["both", "dihedral"])

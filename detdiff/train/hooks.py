@@ -1,0 +1,155 @@
+"""Hooks: the side effects of training (the loss log, the checkpoint, the progress bar), kept out of the step.
+
+:func:`detdiff.train.loop.train_one_epoch` computes; each :class:`Hook` is called before an epoch, after every
+optimizer step, after an epoch and on an error, with the :class:`TrainState` it may look at (the split of
+torchvision's ``references/detection`` loop with detectron2-style hooks).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+from tqdm import tqdm
+
+from detdiff.data.coco import CocoDataset
+from detdiff.model.losses import LossStreams
+from detdiff.train import distributed as ddp
+from detdiff.train.batches import Batch
+from detdiff.train.checkpoint import save_checkpoint
+from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLogWriter, epoch_dir, merge_rank_epochs
+
+
+@dataclass
+class TrainState:
+    """Everything a hook may look at; ``epoch`` is 0-based, ``step`` counts optimizer steps of the run."""
+
+    config: dict[str, Any]
+    rundir: Path
+    dataset: CocoDataset
+    info: ddp.DistInfo
+    model: nn.Module
+    optimizer: torch.optim.Optimizer
+    scheduler: torch.optim.lr_scheduler.LRScheduler
+    epoch: int = 0
+    step: int = 0
+    batches_in_epoch: int = 0
+    images_in_epoch: int = 0
+
+
+class Hook:
+    """Side effects of training; the step computes, hooks record. All methods are optional."""
+
+    def before_epoch(self, state: TrainState) -> None: ...
+
+    def after_step(self, state: TrainState, batch: Batch, streams: LossStreams) -> None: ...
+
+    def after_epoch(self, state: TrainState) -> None: ...
+
+    def on_error(self, state: TrainState) -> None: ...
+
+
+def _xyxy_view_to_xywh_orig(boxes: torch.Tensor, scale: np.ndarray) -> np.ndarray:
+    """``[n, 4]`` xyxy view px -> ``[n, 4]`` xywh original px (divide by each row's ``scale [n]``)."""
+    b = boxes.detach().float().cpu().numpy() / np.asarray(scale, np.float64)[:, None]
+    return np.concatenate([b[:, :2], b[:, 2:] - b[:, :2]], axis=1).astype(np.float32)
+
+
+class LossLogHook(Hook):
+    """Writes every step's per-image / per-object records through :class:`LossLogWriter`; one folder per epoch.
+
+    With several processes each rank writes ``epoch_XXXX.rank<k>/`` and rank 0 merges them after a barrier.
+    """
+
+    def __init__(self, log_dir: Path, dataset: CocoDataset, info: ddp.DistInfo, unmatched_per_image: int) -> None:
+        self.log_dir, self.info = log_dir, info
+        self.writer = LossLogWriter(log_dir, dataset.num_images, dataset.num_annotations,
+                                    rank=info.rank if info.distributed else None,
+                                    unmatched_capacity=max(1, int(unmatched_per_image)) * dataset.num_images)
+
+    def before_epoch(self, state: TrainState) -> None:
+        self.writer.reset(state.epoch)
+
+    def after_step(self, state: TrainState, batch: Batch, streams: LossStreams) -> None:
+        image = {k: streams.image[k].detach().cpu().numpy() for k in IMAGE_FIELDS}
+        objects = {k: streams.objects[k].detach().cpu().numpy() for k in OBJECT_FIELDS if k != "pred_box"}
+        objects["pred_box"] = _xyxy_view_to_xywh_orig(batch.unflip(streams.objects["pred_box"], batch.object_flips),
+                                                      batch.object_scale)
+        um = streams.unmatched
+        where = um["batch_index"].cpu().numpy()
+        unmatched = {"image_index": batch.image_index[where],
+                     "box": _xyxy_view_to_xywh_orig(
+                         batch.unflip(um["box"], None if batch.flips is None else batch.flips[where]),
+                         batch.image_scale[where]),
+                     "score": um["score"].cpu().numpy(), "label": um["label"].cpu().numpy()}
+        self.writer.process(batch.image_index, image, batch.object_index, objects, unmatched)
+
+    def after_epoch(self, state: TrainState) -> None:
+        self.writer.finalize()
+        if self.info.distributed:
+            ddp.barrier()
+            if self.info.is_main:
+                merge_rank_epochs(self.log_dir, state.epoch, self.info.world_size)
+            ddp.barrier()
+
+    def on_error(self, state: TrainState) -> None:
+        rank = self.info.rank if self.info.distributed else None
+        shutil.rmtree(f"{epoch_dir(self.log_dir, state.epoch, rank)}.tmp-{os.getpid()}", ignore_errors=True)
+
+
+class CheckpointHook(Hook):
+    """Saves ``RUNDIR/checkpoint.pt`` on rank 0 after every epoch, once that epoch's log is in place."""
+
+    def __init__(self, path: Path, extra: dict[str, Any]) -> None:
+        self.path, self.extra = path, extra
+
+    def after_epoch(self, state: TrainState) -> None:
+        if state.info.is_main:
+            save_checkpoint(self.path, model=state.model, optimizer=state.optimizer, scheduler=state.scheduler,
+                            epoch=state.epoch, config=state.config, extra=self.extra)
+
+
+class ProgressHook(Hook):
+    """A tqdm bar per epoch with images/s and the running mean of the three streams (per image, / num_pos)."""
+
+    def __init__(self, num_epochs: int) -> None:
+        self.num_epochs = num_epochs
+        self.bar: tqdm | None = None
+        self.sums = np.zeros(3)
+        self.seen = 0
+        self.start = 0.0
+
+    def before_epoch(self, state: TrainState) -> None:
+        self.bar = tqdm(total=state.images_in_epoch, unit="img", leave=False,
+                        desc=f"epoch {state.epoch + 1}/{self.num_epochs}")
+        self.sums[:] = 0.0
+        self.seen = 0
+        self.start = time.perf_counter()
+
+    def after_step(self, state: TrainState, batch: Batch, streams: LossStreams) -> None:
+        norm = streams.image["num_pos"].clamp(min=1).float()
+        per_image = torch.stack([streams.image[k] / norm for k in ("loc_sum", "pos_sum", "neg_sum")])
+        self.sums += per_image.sum(1).cpu().numpy()
+        self.seen += len(batch.image_index)
+        loc, pos, neg = self.sums / max(1, self.seen)
+        rate = self.seen / max(1e-9, time.perf_counter() - self.start)
+        self.bar.set_postfix_str(f"{rate:.1f} img/s  loc {loc:.3f}  pos {pos:.3f}  neg {neg:.3f}", refresh=False)
+        self.bar.update(len(batch.image_index))
+
+    def after_epoch(self, state: TrainState) -> None:
+        self.close()
+
+    def on_error(self, state: TrainState) -> None:
+        self.close()
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+            self.bar = None

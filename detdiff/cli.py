@@ -37,7 +37,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from detdiff.data.demo import generate_demo
+    from detdiff.data.scenarios import generate_demo
 
     paths = generate_demo(args.out, num_images=args.num_images, seed=args.seed, progress=not args.quiet)
     print(f"demo dataset written:\n  annotations  {paths.annotations}\n  images       {paths.images_dir}\n"

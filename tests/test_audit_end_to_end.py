@@ -21,7 +21,7 @@ from sklearn.metrics import roc_auc_score
 
 from detdiff.analysis.validity import score_against_truth
 from detdiff.api import open_run
-from detdiff.data.demo import generate_demo
+from detdiff.data.scenarios import generate_demo
 from detdiff.pipeline import run_audit
 from digits_scene import build_digit_scenes
 

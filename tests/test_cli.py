@@ -11,7 +11,7 @@ from detdiff import cli
 
 @pytest.mark.parametrize("argv, target", [
     (["check", "a.json", "--images", "imgs"], "detdiff.data.lint.run_check"),
-    (["demo", "--out", "d"], "detdiff.data.demo.generate_demo"),
+    (["demo", "--out", "d"], "detdiff.data.scenarios.generate_demo"),
     (["audit", "a.json", "--images", "imgs", "--out", "r"], "detdiff.pipeline.run_audit"),
     (["analyze", "r"], "detdiff.pipeline.analyze"),
     (["report", "r"], "detdiff.pipeline.report"),

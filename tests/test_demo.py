@@ -17,7 +17,7 @@ from pycocotools.cocoeval import COCOeval
 from torchvision.ops import box_convert, box_iou
 
 from detdiff.data.coco import build_dataset, read_coco_json
-from detdiff.data.demo import DEFAULT_FAULT_RATES, DemoPaths, generate_demo
+from detdiff.data.scenarios import DEFAULT_FAULT_RATES, DemoPaths, generate_demo
 
 HIGH_RATES = {"wrong_class": 0.08, "missing_box": 0.06, "loose_box": 0.08, "duplicate_box": 0.06}
 

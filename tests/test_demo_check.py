@@ -7,7 +7,7 @@ import json
 import pytest
 from pycocotools.coco import COCO
 
-from detdiff.data.demo import generate_demo
+from detdiff.data.scenarios import generate_demo
 from detdiff.data.lint import lint_coco
 
 

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from detdiff.data.coco import build_dataset, read_coco_json
-from detdiff.data.demo import generate_demo
+from detdiff.data.scenarios import generate_demo
 from detdiff.data.image_cache import build_image_cache
 from detdiff.train import distributed as ddp
 from detdiff.train.checkpoint import load_checkpoint

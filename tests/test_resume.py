@@ -14,7 +14,7 @@ import pytest
 
 from detdiff.config import load_config, save_config
 from detdiff.data.coco import build_dataset, read_coco_json
-from detdiff.data.demo import generate_demo
+from detdiff.data.scenarios import generate_demo
 from detdiff.data.image_cache import ImageCache, build_image_cache
 from detdiff.train import hooks, loop
 from detdiff.train.checkpoint import load_checkpoint

@@ -16,7 +16,7 @@ from torchvision.ops import box_convert, box_iou
 
 from detdiff.config import load_config
 from detdiff.data.coco import build_dataset, read_coco_json
-from detdiff.data.demo import generate_demo
+from detdiff.data.scenarios import generate_demo
 from detdiff.data.image_cache import InsufficientSpaceError, build_image_cache
 from detdiff.train import loop
 from detdiff.train.batches import BatchMaker, flip_view_boxes

@@ -20,7 +20,7 @@ from pathlib import Path
 import yaml
 
 from detdiff.analysis.validity import score_against_truth
-from detdiff.data.demo import generate_demo
+from detdiff.data.scenarios import generate_demo
 from detdiff.pipeline import run_audit
 
 GOALS = {"wrong_class": ("auroc", 0.95), "loose_box": ("auroc", 0.90), "missing_box": ("auroc", 0.85)}

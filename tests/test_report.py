@@ -23,10 +23,12 @@ import pytest
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from report_fixture import HOSTILE_CATEGORY, HOSTILE_FILE_NAME, make_run_folder  # noqa: E402
 
-from detdiff.report.html import crop_regions, el, write_report  # noqa: E402
-from detdiff.report.summary import (RunFolder, cause_subject, lint_code_counts, lint_totals,  # noqa: E402
-                                    read_table, significant_causes, sourcing_advice, spearman_phrase,
-                                    terminal_summary)
+from detdiff.report.advice import cause_subject, significant_causes, sourcing_advice, spearman_phrase  # noqa: E402
+from detdiff.report.elements import el  # noqa: E402
+from detdiff.report.html import write_report  # noqa: E402
+from detdiff.report.run_folder import RunFolder, lint_code_counts, lint_totals, read_table  # noqa: E402
+from detdiff.report.summary import terminal_summary  # noqa: E402
+from detdiff.report.thumbnails import crop_regions  # noqa: E402
 
 TOP = 6
 

@@ -22,7 +22,9 @@ from matplotlib.lines import Line2D
 from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter
 
 from detdiff.analysis.accumulate import object_epoch_loss
-from detdiff.report.summary import STREAM_TITLES, STREAMS, RunFolder, descriptor_words, rank_correlation
+from detdiff.report.advice import rank_correlation
+from detdiff.report.run_folder import STREAMS, RunFolder
+from detdiff.report.wording import STREAM_TITLES, descriptor_words
 from detdiff.train.loss_log import LossLog
 
 #: the report's colours (hex). ``annotated`` / ``predicted`` / ``suggested`` are also the box colours.

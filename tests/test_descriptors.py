@@ -17,9 +17,9 @@ from torchvision.ops import box_iou
 from detdiff.analysis.descriptors import (SIZE_BIN_LABELS, feature_descriptors, image_descriptors,
                                           object_descriptors, pairwise_overlap, read_pixel_descriptors,
                                           size_bins, truncation)
-from detdiff.analysis.pixel_descriptors import edge_density, laplacian_variance
 from detdiff.boxes import group_pairs
 from detdiff.data.coco import CocoDataset
+from detdiff.data.pixel_descriptors import edge_density, laplacian_variance
 
 
 def _dataset(boxes_per_image: list[np.ndarray], *, labels: list[np.ndarray] | None = None,

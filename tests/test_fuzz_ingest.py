@@ -30,7 +30,8 @@ from hypothesis import strategies as st
 from pycocotools import mask as mask_utils
 
 from detdiff.data.coco import CocoFormatError, build_dataset, read_coco_json
-from detdiff.data.lint import LintReport, lint_coco, run_check
+from detdiff.data.lint import lint_coco, run_check
+from detdiff.data.lint.report import LintReport
 
 W, H = 64, 48
 GOOD_FILES = ["a.png", "sub/b.png", "gray.png"]

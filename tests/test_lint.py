@@ -21,9 +21,11 @@ import pytest
 from pycocotools import mask as mask_utils
 from pycocotools.coco import COCO
 
-import detdiff.data.lint as lint
 from detdiff.data.coco import build_dataset
-from detdiff.data.lint import CODES, format_text, lint_coco, run_check
+from detdiff.data.lint import lint_coco, run_check
+from detdiff.data.lint.areas import flatten_polygons, shoelace_areas
+from detdiff.data.lint.codes import CODES
+from detdiff.data.lint.report import format_text
 
 W, H = 64, 48
 
@@ -360,8 +362,8 @@ def test_rle_area_is_pycocotools_area(tmp_path) -> None:
 def test_shoelace_area_agrees_with_pycocotools_raster() -> None:
     """The exact polygon area and pycocotools' pixel count agree within 2 % on a large polygon."""
     poly = [[10.0, 10.0, 200.5, 15.0, 230.0, 180.0, 120.0, 220.0, 15.0, 150.5]]
-    parts, coords_per_part, coords = lint._flatten_polygons([poly])
-    exact = lint._shoelace_areas(parts, coords_per_part, coords)
+    parts, coords_per_part, coords = flatten_polygons([poly])
+    exact = shoelace_areas(parts, coords_per_part, coords)
     pixels = mask_utils.area(mask_utils.merge(mask_utils.frPyObjects(poly, 300, 300)))  # pycocotools.mask
     assert exact[0] == pytest.approx(float(pixels), rel=0.02)
 

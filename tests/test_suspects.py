@@ -13,12 +13,12 @@ import torch
 from pycocotools.coco import COCO
 from torchvision.ops import box_convert, box_iou
 
-from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
 from detdiff.analysis.suspects import late_epochs, required_epochs
 from detdiff.analysis.tables import (CLASS_COLUMNS, IMAGE_COLUMNS, OBJECT_COLUMNS, analyze_run, review_coco,
                                      write_tables)
 from detdiff.config import load_config
 from detdiff.data.coco import CocoDataset, build_dataset
+from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLogWriter
 
 EPOCHS = 6

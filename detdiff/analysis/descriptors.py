@@ -30,9 +30,9 @@ import numpy as np
 import pandas as pd
 import scipy.sparse
 
-from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
 from detdiff.boxes import PAIR_CHUNK, group_pairs, pair_iou
 from detdiff.data.coco import CocoDataset
+from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES
 
 #: Area edges of the COCO size bins (pycocotools ``COCOeval().params.areaRng``: small [0, 32^2],
 #: medium [32^2, 96^2], large [96^2, 1e10]). COCOeval keeps both edges in both neighbouring ranges; our

@@ -38,8 +38,8 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 from tqdm import tqdm
 
-from detdiff.analysis.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
 from detdiff.data.coco import CocoDataset, UnsafeImagePath, resolve_image_path
+from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
 
 PAD_VALUE = 114
 CACHE_FORMAT_VERSION = 1

@@ -1,1 +1,1 @@
-"""analysis stage of detdiff (see DEVELOPERS.md)."""
+"""Analysis stage: accumulate the loss streams into scores, describe items, find causes and suspects."""

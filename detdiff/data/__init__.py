@@ -1,1 +1,1 @@
-"""data stage of detdiff (see DEVELOPERS.md)."""
+"""Data stage: COCO ingest and lint, the decoded image cache, and the generated demo scenarios."""

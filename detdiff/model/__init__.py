@@ -1,1 +1,1 @@
-"""model stage of detdiff (see DEVELOPERS.md)."""
+"""Model stage: the small detector, its anchors, box coding, per-item loss streams and postprocessing."""

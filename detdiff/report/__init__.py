@@ -1,1 +1,1 @@
-"""report stage of detdiff (see DEVELOPERS.md)."""
+"""Report stage: the HTML report, its plots and the terminal summary of a run folder."""

@@ -1,1 +1,1 @@
-"""train stage of detdiff (see DEVELOPERS.md)."""
+"""Training stage: the epoch loop and its hooks, the loss log, checkpoints, torchrun and the COCOeval pass."""

@@ -39,7 +39,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from detdiff.data.scenarios import generate_demo
 
-    paths = generate_demo(args.out, num_images=args.num_images, seed=args.seed, progress=not args.quiet)
+    paths = generate_demo(args.out, scenario=args.scenario, num_images=args.num_images, seed=args.seed,
+                          progress=not args.quiet)
     print(f"demo dataset written:\n  annotations  {paths.annotations}\n  images       {paths.images_dir}\n"
           f"  truth        {paths.truth}   (planted faults, for scoring the audit)\n"
           f"next: detdiff audit {paths.annotations} --images {paths.images_dir} --out runs/demo")
@@ -88,6 +89,10 @@ def _add_report_options(p: argparse.ArgumentParser) -> None:
                    help="copy no dataset pixels into the report (for private or licensed images)")
 
 
+#: ``detdiff demo --scenario`` choices; kept here so parsing imports no scenario code (see SCENARIOS).
+_SCENARIO_NAMES = ("warehouse", "aerial", "digits")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="detdiff", description="Audit a COCO detection dataset before training: which images and boxes "
@@ -102,8 +107,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--verify-images", action="store_true", help="also open every image (sizes, corrupt files)")
     p.set_defaults(func=_cmd_check)
 
-    p = sub.add_parser("demo", help="generate the bundled warehouse demo dataset with planted label faults")
+    p = sub.add_parser("demo", help="generate a demo dataset with planted label faults (warehouse, aerial, digits)")
     p.add_argument("--out", type=Path, required=True)
+    p.add_argument("--scenario", choices=_SCENARIO_NAMES, default="warehouse",
+                   help="warehouse (packing table, the default), aerial (drone over a marina and car park) "
+                        "or digits (real handwritten digits as house numbers on photographs)")
     p.add_argument("--num-images", type=int, default=300)
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--quiet", action="store_true", help="no progress bar")

@@ -3,6 +3,8 @@
 A thing is a list of :class:`Op` (cv2 drawing calls) in its own frame, origin at its centre, x to the
 right. :func:`place_object` puts one into a :class:`Scene` at a position where every object placed
 so far stays visible enough, and records its box and how much of it is inside the image and visible;
+:func:`put_object` and :func:`put_occluder` do the same at a spot the scene chose (a parking bay, a
+berth, a house number), touching only the window they cover, for layouts of many objects.
 :func:`cast_shadow` and :func:`light_and_lens` turn the drawn scene into a photograph-like image.
 Nothing here draws at random except through the ``rng`` it is given, so a scenario's random-stream
 order is the order of its calls.
@@ -202,13 +204,72 @@ def place_object(rng: np.random.Generator, scene: Scene, category: int, ops: lis
         visible = np.bincount(owner.ravel().astype(np.int64) + 1, minlength=len(scene.objects) + 2)[1:]
         if any(visible[j] < obj.min_visible * obj.in_pixels for j, obj in enumerate(scene.objects)):
             continue
-        ys, xs = np.nonzero(inside)
-        bbox = (float(cols.start + xs.min()), float(rows.start + ys.min()),
-                float(xs.max() - xs.min() + 1), float(ys.max() - ys.min() + 1))
         scene.owner = owner
         scene.objects.append(Placed(category, ops, (cx, cy), tiny, in_group, min_visible, full, in_pixels,
-                                    0, bbox))
+                                    0, _tight_box(rows, cols, inside)))
         return
+
+
+def _tight_box(rows: slice, cols: slice, inside: np.ndarray) -> tuple[float, float, float, float]:
+    """xywh box, in image pixels, of the true pixels of ``inside`` (the image window ``rows, cols``)."""
+    ys, xs = np.nonzero(inside)
+    return (float(cols.start + xs.min()), float(rows.start + ys.min()),
+            float(xs.max() - xs.min() + 1), float(ys.max() - ys.min() + 1))
+
+
+def _cover(scene: Scene, rows: slice, cols: slice, inside: np.ndarray, value: int, exclusive: bool) -> bool:
+    """Give the ``inside`` pixels of the window to ``value`` unless that hides too much of an object below.
+
+    Refused when ``exclusive`` and any object is covered, or when a covered object would keep less
+    than its ``min_visible`` share of its in-image pixels; bookkeeping stays inside the window.
+    """
+    window = scene.owner[rows, cols]
+    below = window[inside]
+    below = below[below >= 0].astype(np.int64)
+    if below.size:
+        if exclusive:
+            return False
+        lost = np.bincount(below, minlength=len(scene.objects))
+        hit = np.nonzero(lost)[0]
+        if any(scene.objects[j].visible_pixels - lost[j] < scene.objects[j].min_visible * scene.objects[j].in_pixels
+               for j in hit):
+            return False
+        for j in hit:
+            scene.objects[j].visible_pixels -= int(lost[j])
+    window[inside] = value
+    return True
+
+
+def put_object(scene: Scene, category: int, silhouette: np.ndarray, c: int, centre: tuple[int, int], *,
+               ops: list[Op], min_visible: float, exclusive: bool = False, min_in_image: float = 0.3,
+               min_side: float = 3.0, in_group: bool = False) -> Placed | None:
+    """Put an object at a fixed ``centre`` on top of what is there; its :class:`Placed`, or None if refused.
+
+    ``silhouette`` is ``bool [L, L]`` with the object's origin at pixel (c, c) (see :func:`local_mask`).
+    Refused when under ``min_in_image`` of its pixels fall inside the image, when its in-image box is
+    under ``min_side`` px either way, or when covering objects below is refused (see ``exclusive`` and
+    ``min_visible`` in :func:`_cover`). Unlike :func:`place_object` it keeps ``visible_pixels`` up to
+    date as it goes and touches only the window it covers, so a scene must be built with it alone.
+    """
+    full = int(silhouette.sum())
+    rows, cols, mrows, mcols = clip_window(centre, c, silhouette.shape[0], scene.width, scene.height)
+    inside = silhouette[mrows, mcols]
+    in_pixels = int(inside.sum())
+    if full == 0 or in_pixels < max(1.0, min_in_image * full):
+        return None
+    bbox = _tight_box(rows, cols, inside)
+    if min(bbox[2], bbox[3]) < min_side or not _cover(scene, rows, cols, inside, len(scene.objects), exclusive):
+        return None
+    placed = Placed(category, ops, centre, False, in_group, min_visible, full, in_pixels, in_pixels, bbox)
+    scene.objects.append(placed)
+    return placed
+
+
+def put_occluder(scene: Scene, silhouette: np.ndarray, c: int, centre: tuple[int, int]) -> bool:
+    """Cover pixels with something that is not an object (a tree canopy) if every object below stays visible enough."""
+    rows, cols, mrows, mcols = clip_window(centre, c, silhouette.shape[0], scene.width, scene.height)
+    inside = silhouette[mrows, mcols]
+    return bool(inside.any()) and _cover(scene, rows, cols, inside, -1, False)
 
 
 def settle_visibility(scene: Scene) -> None:

@@ -22,13 +22,11 @@ from typing import Any, Callable
 
 import cv2
 import numpy as np
-from tqdm import tqdm
 
 from detdiff.data.scenarios.drawing import (
     Op, Scene, cast_shadow, draw, jitter_colour, light_and_lens, object_record, place_object, rect, rotate,
     rounded_rect, settle_visibility, shade)
-from detdiff.data.scenarios.faults import (
-    DemoPaths, check_fault_rates, image_ids, remove_stale_images, spawn_streams, write_dataset, write_image)
+from detdiff.data.scenarios.faults import DemoPaths, check_fault_rates, draw_images, write_dataset
 
 SCENARIO = "warehouse packing table seen from a ceiling camera looking straight down"
 
@@ -317,23 +315,14 @@ def generate(out_dir: str | Path, *, num_images: int = 300, seed: int = 0, width
     if min(width, height) < 96:
         raise ValueError(f"generate_demo: images must be at least 96 x 96 px, got {width} x {height}")
     rates = check_fault_rates(fault_rates)
-    out_dir = Path(out_dir)
-    images_dir = out_dir / "images"
-    images_dir.mkdir(parents=True, exist_ok=True)
 
-    streams = spawn_streams(seed, num_images)
-    ids = image_ids(streams.ids, num_images)
-    objects: list[dict[str, Any]] = []
-    image_records: list[dict[str, Any]] = []
-    for k in tqdm(range(num_images), desc="demo images", unit="img", disable=not progress):
-        rng = np.random.default_rng(streams.images[k])
+    def draw_table(rng: np.random.Generator, image_id: int) -> tuple[np.ndarray, dict[str, Any], list[dict[str, Any]]]:
         scene = _layout(rng, width, height)
         pixels, strength = _render(rng, scene)
-        file_name = f"table_{ids[k]:05d}.jpg"
-        write_image(images_dir, file_name, pixels, JPEG_QUALITY)
-        image_records.append({"image_id": ids[k], "file_name": file_name, "width": width,
-                              "height": height, **scene.conditions, **strength})
-        objects += [object_record(obj, ids[k]) for obj in scene.objects]
-    remove_stale_images(images_dir, "table_*.jpg", {r["file_name"] for r in image_records})
+        record = {"width": width, "height": height, **scene.conditions, **strength}
+        return pixels, record, [object_record(obj, image_id) for obj in scene.objects]
+
+    streams, images, objects = draw_images(Path(out_dir), num_images=num_images, seed=seed, stem="table",
+                                           quality=JPEG_QUALITY, progress=progress, draw=draw_table)
     return write_dataset(out_dir, scenario=SCENARIO, seed=seed, streams=streams, categories=CATEGORIES,
-                         confusions=CONFUSIONS, images=image_records, objects=objects, rates=rates)
+                         confusions=CONFUSIONS, images=images, objects=objects, rates=rates)

@@ -12,11 +12,14 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Callable
 
-from detdiff.data.scenarios import warehouse
+from detdiff.data.scenarios import streetcam, warehouse
 from detdiff.data.scenarios.faults import DEFAULT_FAULT_RATES, DemoPaths
 
 #: Scenario name -> generator function.
-SCENARIOS: dict[str, Callable[..., DemoPaths]] = {"warehouse": warehouse.generate}
+SCENARIOS: dict[str, Callable[..., DemoPaths]] = {
+    "warehouse": warehouse.generate,
+    "streetcam": streetcam.generate,
+}
 DEFAULT_SCENARIO = "warehouse"
 
 __all__ = ["DEFAULT_FAULT_RATES", "DEFAULT_SCENARIO", "SCENARIOS", "DemoPaths", "generate_demo"]

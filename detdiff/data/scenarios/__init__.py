@@ -12,14 +12,15 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Callable
 
-from detdiff.data.scenarios import aerial, digits, warehouse
+from detdiff.data.scenarios import aerial, digits, streetcam, warehouse
 from detdiff.data.scenarios.faults import DEFAULT_FAULT_RATES, DemoPaths
 
-#: Scenario name -> generator function: the tuned-on warehouse table and two held-out scenes.
+#: Scenario name -> generator function: the tuned-on warehouse table and three held-out scenes.
 SCENARIOS: dict[str, Callable[..., DemoPaths]] = {
     "warehouse": warehouse.generate,     # ceiling camera over a packing table, 320 x 240, 6 classes
     "aerial": aerial.generate,           # drone over a marina and car park, mixed sizes, 15 long-tailed classes
     "digits": digits.generate,           # real handwritten digits as house numbers on real photographs
+    "streetcam": streetcam.generate,     # city street at real photo sizes (640 to 4000 px), 24 look-alike classes
 }
 DEFAULT_SCENARIO = "warehouse"
 

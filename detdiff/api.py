@@ -56,6 +56,12 @@ class AuditRun:
         return self._table("causes")
 
     @cached_property
+    def self_check(self) -> dict[str, Any]:
+        """The audit's own measurement of how well it finds each fault kind on this dataset (probes), {} if none."""
+        path = self.rundir / "self_check.json"
+        return json.loads(path.read_text()) if path.is_file() else {}
+
+    @cached_property
     def metrics(self) -> dict[str, Any]:
         """COCOeval figures of the audit's own detector (how far its scores can be trusted)."""
         return json.loads((self.rundir / "metrics.json").read_text())
@@ -67,12 +73,16 @@ class AuditRun:
 
 def audit(annotations: str | Path, images: str | Path, out: str | Path, *, config: str | Path | None = None,
           epochs: int | None = None, image_size: int | None = None, batch_size: int | None = None,
-          device: str | None = None, seed: int | None = None, resume: bool = False, progress: bool = True,
-          report: bool = True, thumbnails: bool | None = None) -> AuditRun:
-    """Run the full audit (check, train with loss logging, analyse, report) and return the run."""
+          device: str | None = None, seed: int | None = None, budget: float | None = None, resume: bool = False,
+          progress: bool = True, report: bool = True, thumbnails: bool | None = None) -> AuditRun:
+    """Run the full audit (check, recipe, train with loss logging, cross-fit, analyse, report) and return the run.
+
+    ``budget``: minutes of training to fit the recipe to (default: the config's ``recipe.budget_minutes``).
+    """
     from detdiff.pipeline import run_audit, run_overrides
 
-    overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed)
+    overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed,
+                              budget=budget)
     run_audit(annotations, images, out, config_path=config, overrides=overrides, resume=resume,
               progress=progress, make_report=report, thumbnails=thumbnails)
     return AuditRun(Path(out))

@@ -51,7 +51,7 @@ def _overrides(args: argparse.Namespace) -> dict:
     from detdiff.pipeline import run_overrides
 
     return run_overrides(image_size=args.image_size, epochs=args.epochs, batch_size=args.batch_size,
-                         device=args.device, seed=args.seed, threads=args.threads)
+                         device=args.device, seed=args.seed, threads=args.threads, budget=args.budget)
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
@@ -90,7 +90,7 @@ def _add_report_options(p: argparse.ArgumentParser) -> None:
 
 
 #: ``detdiff demo --scenario`` choices; kept here so parsing imports no scenario code (see SCENARIOS).
-_SCENARIO_NAMES = ("warehouse", "aerial", "digits")
+_SCENARIO_NAMES = ("warehouse", "aerial", "digits", "streetcam")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -128,6 +128,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--device", choices=["cpu", "cuda", "auto"], default=None)
     p.add_argument("--seed", type=int, default=None)
     p.add_argument("--threads", type=int, default=None, help="torch threads (default: all cores)")
+    p.add_argument("--budget", type=float, default=None, metavar="MINUTES",
+                   help="training time to fit the recipe to, estimated on this machine before training (default: "
+                        "config recipe.budget_minutes); over it, epochs and then the view size are reduced")
     p.add_argument("--resume", action="store_true", help="continue after the last finished epoch")
     p.add_argument("--no-report", action="store_true")
     p.add_argument("--quiet", action="store_true", help="no progress bars")

@@ -1,4 +1,4 @@
-"""The audit as plain functions: check → image cache → train + log → evaluate → analysis → report.
+"""The audit as plain functions: check → image cache → train + log → evaluate → cross-fit → analysis → report.
 
 Each stage writes its results into the run folder before the next starts, so a failure later on loses
 nothing already computed, and ``detdiff analyze`` / ``detdiff report`` can redo the later stages alone.
@@ -14,12 +14,15 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from detdiff import __version__
 from detdiff.atomic import write_json_atomic
 from detdiff.config import load_config, load_saved_config, save_config
 from detdiff.data.coco import CocoDataset, build_dataset, load_saved_dataset, read_coco_json, save_dataset
 
 DATASET_FILE = "dataset.npz"
+RECIPE_FILE = "recipe.json"
 
 
 class RunFolderError(RuntimeError):
@@ -101,12 +104,38 @@ def report(rundir: str | Path, *, top: int | None = None, thumbnails: bool | Non
                         thumbnail_size=int(rcfg["thumbnail_size"]))
 
 
+def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dict, rundir: Path, *,
+                  progress: bool = True):
+    """Cross-fit the crop models (``RUNDIR/crossfit/``) with the run's thread count; every scorable box carries
+    a virtual box probe."""
+    import torch
+
+    from detdiff.crossfit.folds import cross_fit
+    from detdiff.data.probes import box_probes
+    from detdiff.train.resources import thread_count
+
+    if cache.crops is None:
+        raise RunFolderError(f"{cache.cache_dir}: the image cache holds no object crops; run the audit again")
+    seed = int(config["train"]["seed"])
+    scorable = np.flatnonzero(~dataset.iscrowd & cache.usable[dataset.ann_image_index])
+    probe_rows, probe_boxes = box_probes(dataset, scorable, seed)
+    saved = torch.get_num_threads()
+    torch.set_num_threads(thread_count(config["train"]))
+    try:
+        return cross_fit(dataset, trained, cache.crops, cache.usable, probe_rows, probe_boxes, config, rundir,
+                         progress=progress)
+    finally:
+        torch.set_num_threads(saved)
+
+
 def run_overrides(*, image_size: int | None = None, epochs: int | None = None, batch_size: int | None = None,
-                  device: str | None = None, seed: int | None = None, threads: int | None = None) -> dict:
+                  device: str | None = None, seed: int | None = None, threads: int | None = None,
+                  budget: float | None = None) -> dict:
     """Config overrides from the command line or the API (``None`` = keep the config file's value)."""
     return {"data": {"image_size": image_size},
             "train": {"epochs": epochs, "batch_size": batch_size, "device": device, "seed": seed,
-                      "threads": threads}}
+                      "threads": threads},
+            "recipe": {"budget_minutes": budget}}
 
 
 def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dict, resume: bool) -> dict:
@@ -127,26 +156,32 @@ def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dic
 
 def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path, config: dict, resume: bool,
                   progress: bool, timings: dict[str, float]):
-    """Main process only: folder, config, lint + ingest, image cache (each result written to ``rundir``)."""
+    """Main process only: folder, lint + ingest, recipe and config, image cache (each written to ``rundir``)."""
     from detdiff.data.image_cache import build_image_cache
+    from detdiff.recipe import fit_recipe, format_recipe
 
     t0 = time.perf_counter()
     prepare_rundir(rundir)
     if not resume:
-        for stale in ("log", "checkpoint.pt"):
+        for stale in ("log", "checkpoint.pt", "crossfit"):
             target = rundir / stale
             if target.is_dir():
                 shutil.rmtree(target)
             elif target.exists():
                 target.unlink()
-    save_config(config, rundir / "config.yaml")
     dataset = ingest(annotations, images_dir, rundir, config)
     timings["check_s"] = time.perf_counter() - t0
+    config, recipe = fit_recipe(dataset, config, measure=True)
+    print(format_recipe(recipe), flush=True)
+    write_json_atomic(rundir / RECIPE_FILE, recipe.to_json())
+    save_config(config, rundir / "config.yaml")
+    timings["recipe_s"] = time.perf_counter() - t0 - timings["check_s"]
     cache = build_image_cache(dataset, rundir / "cache", int(config["data"]["image_size"]),
                               max_pixels=int(config["data"]["max_pixels"]), progress=progress,
-                              pixel_stats=bool(config["analysis"]["pixel_descriptors"]))
-    timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"]
-    return dataset, cache
+                              pixel_stats=bool(config["analysis"]["pixel_descriptors"]),
+                              with_crops=bool(config["crossfit"]["enabled"]))
+    timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"] - timings["recipe_s"]
+    return dataset, cache, config
 
 
 def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Path, *,
@@ -160,6 +195,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     before training is passed to the others, so no process waits forever.
     """
     from detdiff.data.image_cache import ImageCache
+    from detdiff.data.probes import PROBES_FILE, plant_missing_probes, probes_record, training_copy
     from detdiff.train.distributed import barrier, broadcast_object, init_distributed, shutdown
     from detdiff.train.evaluate import final_pass
     from detdiff.train.loop import train_and_log
@@ -171,7 +207,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     failure: BaseException | None = None
     if dist.is_main:
         try:
-            dataset, cache = _prepare_main(annotations, images_dir, rundir, config, resume, progress, timings)
+            dataset, cache, config = _prepare_main(annotations, images_dir, rundir, config, resume, progress, timings)
         except BaseException as exc:            # re-raised below, after the other processes are told
             failure = exc
     message = broadcast_object(None if failure is None else str(failure), dist)
@@ -183,8 +219,13 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     if not dist.is_main:
         dataset = load_saved_dataset(rundir / DATASET_FILE)
         cache = ImageCache.open(rundir / "cache")
+        config = load_saved_config(rundir / "config.yaml")       # the recipe's resolved values
+    missing_probes = plant_missing_probes(dataset, config["probes"], int(config["train"]["seed"]))
+    if dist.is_main:
+        write_json_atomic(rundir / PROBES_FILE, probes_record(dataset, missing_probes))
+    trained = training_copy(dataset, missing_probes)
     t1 = time.perf_counter()
-    result = train_and_log(dataset, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
+    result = train_and_log(trained, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
     timings["train_s"] = time.perf_counter() - t1
     shutdown()                                   # evaluation, analysis and report run on the main process only
     if not dist.is_main:
@@ -193,6 +234,10 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     t2 = time.perf_counter()
     metrics = final_pass(result.model, dataset, cache, config, rundir)
     timings["evaluate_s"] = time.perf_counter() - t2
+    if config["crossfit"]["enabled"]:
+        t_fit = time.perf_counter()
+        cross_fit_run(dataset, trained, cache, config, rundir, progress=progress)
+        timings["crossfit_s"] = time.perf_counter() - t_fit
     run_info = {
         "detdiff_version": __version__, "annotations": str(Path(annotations).resolve()),
         "images_dir": str(Path(images_dir).resolve()), "num_images": dataset.num_images,
@@ -205,8 +250,10 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     }
     write_json_atomic(rundir / "run.json", run_info)
     t3 = time.perf_counter()
-    analyze(rundir, dataset, config)
+    tables = analyze(rundir, dataset, config)
     timings["analysis_s"] = time.perf_counter() - t3
+    if tables.self_check:
+        run_info["self_check"] = tables.self_check
     report_path = None
     if make_report:
         t4 = time.perf_counter()

@@ -18,6 +18,8 @@ import pandas as pd
 import pytest
 from pycocotools.coco import COCO
 from sklearn.metrics import roc_auc_score
+import torch
+from torchvision.ops import box_convert, box_iou
 
 from detdiff.analysis.validity import score_against_truth
 from detdiff.api import open_run
@@ -50,7 +52,7 @@ def demo_run(tmp_path_factory):
 
 def test_swapped_digit_labels_rank_near_the_top(digits_run) -> None:
     run, swapped = digits_run
-    objects = run.objects
+    objects = run.objects[~run.objects["probe"]]        # left-out probe boxes have no loss-based scores
     positive = objects["annotation_id"].isin(swapped).to_numpy()
     auroc = roc_auc_score(positive, objects["pos_score"].to_numpy())
     assert auroc > 0.85, auroc                          # measured 0.93
@@ -97,3 +99,13 @@ def test_tables_follow_the_contract(demo_run) -> None:
     assert set(run.suspects["kind"]) <= {"wrong_class", "missing_box", "loose_box", "duplicate_box"}
     assert run.report_path.exists()
     assert np.isfinite(run.images["loc_score"]).mean() > 0.95
+    probes = run.objects[run.objects["probe"].to_numpy(dtype=bool)]
+    assert len(probes) and probes["pos_score"].isna().all()      # left out of training: no loss-based score
+    # no missing-box suspect points at a probe (reference IoU: torchvision.ops.box_iou)
+    missing = run.suspects[run.suspects["kind"] == "missing_box"].merge(probes[["image_id", "x", "y", "w", "h"]],
+                                                                        on="image_id", suffixes=("", "_probe"))
+    if len(missing):
+        a = torch.tensor(missing[["x", "y", "w", "h"]].to_numpy(), dtype=torch.float64)
+        b = torch.tensor(missing[["x_probe", "y_probe", "w_probe", "h_probe"]].to_numpy(), dtype=torch.float64)
+        iou = box_iou(box_convert(a, "xywh", "xyxy"), box_convert(b, "xywh", "xyxy")).diagonal()
+        assert float(iou.max()) < 0.5

@@ -38,6 +38,7 @@ import pandas as pd
 import scipy.sparse
 import scipy.sparse.csgraph
 
+from detdiff.analysis.calibration import cut_list
 from detdiff.analysis.descriptors import PairwiseOverlap
 from detdiff.boxes import group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
 from detdiff.analysis.dynamics import mean_over_valid, sigmoid
@@ -50,7 +51,7 @@ SUSPECT_COLUMNS = ["kind", "image_id", "annotation_id", "x", "y", "w", "h", "sug
                    "suggested_x", "suggested_y", "suggested_w", "suggested_h", "score", "evidence"]
 #: extra columns: image / annotation rows, the class the suspect concerns, the fix as a verb, and for a
 #: duplicate the annotation it repeats
-EXTRA_COLUMNS = ["image_index", "ann_index", "category_id", "suggested_action", "duplicate_of"]
+EXTRA_COLUMNS = ["p_fault", "image_index", "ann_index", "category_id", "suggested_action", "duplicate_of"]
 
 
 def late_epochs(epochs: list[int], late_fraction: float) -> list[int]:
@@ -70,7 +71,8 @@ def required_epochs(available: np.ndarray, share: float) -> np.ndarray:
 
 def _frame(dataset: CocoDataset, kind: str, rows: np.ndarray, *, score: np.ndarray, evidence: list[str],
            action: str, image_rows: np.ndarray | None = None, suggested_label: np.ndarray | None = None,
-           suggested_box: np.ndarray | None = None, duplicate_of: np.ndarray | None = None) -> pd.DataFrame:
+           suggested_box: np.ndarray | None = None, duplicate_of: np.ndarray | None = None,
+           p_fault: np.ndarray | None = None) -> pd.DataFrame:
     """Suspect rows in the suspects.csv layout (plus :data:`EXTRA_COLUMNS`).
 
     ``rows [N]``: annotation rows, -1 where the suspect has no annotation (then ``image_rows [N]`` says
@@ -96,6 +98,7 @@ def _frame(dataset: CocoDataset, kind: str, rows: np.ndarray, *, score: np.ndarr
         "suggested_w": sugg_box[:, 2], "suggested_h": sugg_box[:, 3],
         "score": np.asarray(score, dtype=np.float64),
         "evidence": pd.Series(list(evidence), dtype=object),
+        "p_fault": np.full(n, np.nan) if p_fault is None else np.asarray(p_fault, dtype=np.float64),
         "image_index": img.astype(np.int64),
         "ann_index": rows,
         "category_id": _take(cat, topic_label),
@@ -280,6 +283,66 @@ def find_suspects(dataset: CocoDataset, log: LossLog, object_pct: pd.DataFrame, 
                            high_pct=float(analysis_cfg["loose_box_min_pct"])),
         duplicate_box_suspects(dataset, overlap, min_iou=float(analysis_cfg["duplicate_iou"])),
     ]
+    return sort_suspects(frames, dataset)
+
+
+def _listed(score: np.ndarray, posterior: np.ndarray, level: float) -> np.ndarray:
+    """Rows of the list: finite scores ranked high to low, cut where the fault probability falls below ``level``."""
+    rows = np.flatnonzero(np.isfinite(score))
+    order = rows[np.argsort(-score[rows], kind="stable")]
+    return cut_list(order, posterior, level)
+
+
+def calibrated_wrong_class_suspects(dataset: CocoDataset, evidence: pd.DataFrame, level: float) -> pd.DataFrame:
+    """Objects whose out-of-sample class margin puts their probability of a wrong label at ``level`` or more.
+
+    ``evidence``: the per-object columns of :func:`detdiff.analysis.self_check.object_evidence`. Suggestion: the
+    class the crop models gave the highest probability other than the label.
+    """
+    score = evidence["wrong_class_score"].to_numpy(dtype=np.float64)
+    posterior = evidence["wrong_class_p"].to_numpy(dtype=np.float64)
+    rows = _listed(score, posterior, level)
+    label_of_id = {int(c): k for k, c in enumerate(dataset.category_ids)}
+    other_ids = evidence["oof_other_category_id"].to_numpy(dtype=np.float64, na_value=np.nan)[rows]
+    suggested = np.array([label_of_id[int(c)] for c in other_ids], dtype=np.int64)
+    p_label = evidence["oof_label_p"].to_numpy(dtype=np.float64)[rows]
+    p_other = evidence["oof_other_p"].to_numpy(dtype=np.float64)[rows]
+    evidence_text = [f"crop models trained on other images give '{_name(dataset, s)}' probability {po:.2f} and the "
+                     f"labelled '{_name(dataset, dataset.labels[r])}' {pl:.2f}; estimated probability that the label "
+                     f"is wrong {pf:.2f}"
+                     for r, s, po, pl, pf in zip(rows, suggested, p_other, p_label, posterior[rows])]
+    return _frame(dataset, "wrong_class", rows, suggested_label=suggested, score=score[rows], evidence=evidence_text,
+                  action="relabel", p_fault=posterior[rows])
+
+
+def calibrated_loose_box_suspects(dataset: CocoDataset, evidence: pd.DataFrame, level: float) -> pd.DataFrame:
+    """Objects whose annotated box the crop models redraw elsewhere, at fault probability ``level`` or more.
+
+    Suggestion: the box the crop model drew (``oof_box_x/y/w/h``).
+    """
+    score = evidence["loose_box_score"].to_numpy(dtype=np.float64)
+    posterior = evidence["loose_box_p"].to_numpy(dtype=np.float64)
+    rows = _listed(score, posterior, level)
+    suggested = evidence[["oof_box_x", "oof_box_y", "oof_box_w", "oof_box_h"]].to_numpy(dtype=np.float64)[rows]
+    evidence_text = [f"crop models trained on other images draw the box at [{b[0]:.0f}, {b[1]:.0f}, {b[2]:.0f}, "
+                     f"{b[3]:.0f}] (IoU {1 - sc:.2f} with the annotation); estimated probability that the box is "
+                     f"loose {pf:.2f}" for b, sc, pf in zip(suggested, score[rows], posterior[rows])]
+    return _frame(dataset, "loose_box", rows, suggested_label=dataset.labels[rows], suggested_box=suggested,
+                  score=score[rows], evidence=evidence_text, action="replace_box", p_fault=posterior[rows])
+
+
+def calibrated_missing_box_suspects(proposals: pd.DataFrame, level: float) -> pd.DataFrame:
+    """Proposals (probe hits already removed, ``p_fault`` set) at fault probability ``level`` or more, ranked."""
+    score = proposals["score"].to_numpy(dtype=np.float64)
+    rows = _listed(score, proposals["p_fault"].to_numpy(dtype=np.float64), level)
+    out = proposals.iloc[rows].copy()
+    out["evidence"] = [f"{text}; estimated probability that a box is missing {p:.2f}"
+                       for text, p in zip(out["evidence"], out["p_fault"])]
+    return out.reset_index(drop=True)
+
+
+def sort_suspects(frames: list[pd.DataFrame], dataset: CocoDataset) -> pd.DataFrame:
+    """All kinds in one frame, sorted by kind then score (descending)."""
     frames = [f for f in frames if len(f)]
     if not frames:
         return _frame(dataset, "", np.zeros(0, np.int64), score=np.zeros(0), evidence=[], action="")

@@ -10,14 +10,17 @@ ids are the real COCO ids (``dataset.category_ids[label]``).
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from detdiff.analysis import accumulate, causes, descriptors, dynamics, suspects
+from detdiff.atomic import write_json_atomic
+from detdiff.analysis import accumulate, causes, descriptors, dynamics, self_check, suspects
+from detdiff.crossfit.folds import load_predictions
 from detdiff.data.coco import CocoDataset
+from detdiff.data.probes import PROBES_FILE, read_missing_probes
 from detdiff.train.loss_log import LossLog
 
 IMAGE_COLUMNS = ["image_id", "file_name", "width", "height", "usable", "loc_score", "pos_score", "neg_score",
@@ -34,6 +37,7 @@ CSV_DECIMALS = 6
 ROUNDED_TABLES = ("images", "objects")   # causes keeps full precision (p-values far below 1e-6)
 TABLE_FILES = {"images": "images.csv", "objects": "objects.csv", "suspects": "suspects.csv",
                "classes": "classes.csv", "causes": "causes.csv"}
+SELF_CHECK_FILE = "self_check.json"
 
 
 @dataclass
@@ -45,6 +49,7 @@ class AnalysisTables:
     suspects: pd.DataFrame
     classes: pd.DataFrame
     causes: pd.DataFrame
+    self_check: dict = field(default_factory=dict)
 
 
 def _ordered(frame: pd.DataFrame, contract: list[str]) -> pd.DataFrame:
@@ -127,11 +132,43 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
         "x": dataset.boxes[:, 0], "y": dataset.boxes[:, 1], "w": dataset.boxes[:, 2], "h": dataset.boxes[:, 3],
         "iscrowd": dataset.iscrowd}), obj_scores, learning, obj_desc], axis=1)
     objects["why"] = found.object_why
-    suspect_rows = suspects.find_suspects(dataset, log, obj_scores, overlap, cfg)
+    prediction = load_predictions(rundir)
+    if prediction is None:                # no cross-fitted evidence (crossfit off): the in-sample suspects
+        suspect_rows, checks = suspects.find_suspects(dataset, log, obj_scores, overlap, cfg), {}
+    else:
+        missing_rows = read_missing_probes(rundir / PROBES_FILE, dataset)
+        objects["probe"] = np.isin(np.arange(dataset.num_annotations), missing_rows)
+        scorable = ~dataset.iscrowd & usable[dataset.ann_image_index]
+        evidence, wrong_cal, loose_cal = self_check.object_evidence(dataset, prediction, scorable,
+                                                                    int(config["train"]["seed"]))
+        objects = pd.concat([objects, evidence], axis=1)
+        proposals = suspects.missing_box_suspects(dataset, log, late.epochs)
+        kept, image_evidence, proposal_cal, image_cal = self_check.missing_box_evidence(dataset, proposals,
+                                                                                        missing_rows, usable)
+        images = pd.concat([images, image_evidence], axis=1)
+        level = float(cfg["suspect_level"])
+        lists = {"wrong_class": suspects.calibrated_wrong_class_suspects(dataset, evidence, level),
+                 "loose_box": suspects.calibrated_loose_box_suspects(dataset, evidence, level),
+                 "missing_box": suspects.calibrated_missing_box_suspects(kept, level)}
+        suspect_rows = suspects.sort_suspects(
+            [*lists.values(), suspects.duplicate_box_suspects(dataset, overlap, min_iou=float(cfg["duplicate_iou"]))],
+            dataset)
+        counts = {"wrong_class": int(np.isfinite(evidence["wrong_class_score"]).sum()),
+                  "loose_box": int(np.isfinite(evidence["loose_box_score"]).sum()), "missing_box": len(kept)}
+        cals = {"wrong_class": wrong_cal, "loose_box": loose_cal, "missing_box": proposal_cal}
+        checks = {kind: self_check.summary(kind, cals[kind], items=counts[kind],
+                                           listed_p=lists[kind]["p_fault"].to_numpy(dtype=np.float64), level=level)
+                  for kind in self_check.FAULT_KINDS}
+        checks["missing_box"]["probe_hits"] = checks["missing_box"]["probes"]
+        checks["missing_box"]["probes"] = int(len(missing_rows))
+        if image_cal is not None:
+            checks["missing_box"]["image_auroc"] = self_check.summary("missing_box", image_cal, items=0,
+                                                                      listed_p=np.zeros(0), level=level)["auroc"]
+        checks["crossfit_seconds"] = round(float(prediction.seconds), 1)
     return AnalysisTables(
         images=_ordered(images, IMAGE_COLUMNS), objects=_ordered(objects, OBJECT_COLUMNS),
         suspects=_ordered(suspect_rows, suspects.SUSPECT_COLUMNS),
-        classes=class_table(dataset, objects, suspect_rows), causes=found.table)
+        classes=class_table(dataset, objects, suspect_rows), causes=found.table, self_check=checks)
 
 
 def review_coco(tables: AnalysisTables, dataset: CocoDataset) -> dict:
@@ -185,4 +222,6 @@ def write_tables(tables: AnalysisTables, rundir: str | Path, dataset: CocoDatase
     tmp.write_text(json.dumps(review_coco(tables, dataset)))
     tmp.replace(path)
     written["review"] = path
+    if tables.self_check:
+        written["self_check"] = write_json_atomic(rundir / SELF_CHECK_FILE, tables.self_check)
     return written

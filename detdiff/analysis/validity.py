@@ -69,6 +69,17 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
             "auroc_box_count": auroc(box_count.reindex(sub["image_id"]).to_numpy(), pos),
             "auroc_random": auroc(rng.random(len(sub)), pos),
         }
+    evidence_columns = {"wrong_class": "wrong_class_score", "loose_box": "loose_box_score"}
+    for kind, column in evidence_columns.items():          # the cross-fitted evidence behind the lists
+        if column in objects:
+            planted = ids(kind)
+            sub = objects[objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)]
+            out[kind]["auroc_evidence"] = auroc(sub[column].to_numpy(), sub["annotation_id"].isin(planted).to_numpy())
+    if "class_freq" in objects:                            # class rarity alone: rarer = more suspicious
+        planted = ids("wrong_class")
+        sub = objects[objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)]
+        out["wrong_class"]["auroc_rarity"] = auroc(-sub["class_freq"].to_numpy(),
+                                                   sub["annotation_id"].isin(planted).to_numpy())
     if "other_class_lead" in objects:          # the ranking behind the wrong_class suspects, all objects
         planted = ids("wrong_class")
         mask = objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)
@@ -89,6 +100,8 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
         "auroc_box_count": auroc(images["box_count"].to_numpy(), pos),
         "auroc_random": auroc(rng.random(len(images)), pos),
     }
+    if "missing_box_score" in images:
+        out["missing_box"]["auroc_evidence"] = auroc(images["missing_box_score"].to_numpy(), pos)
     out["duplicate_box"] = {"planted": len(ids("duplicate_box"))}
 
     for kind in ("wrong_class", "loose_box", "duplicate_box", "missing_box"):
@@ -106,10 +119,22 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
         else:
             hits = ranked["annotation_id"].isin(ids(kind)).to_numpy()
         p, r = _precision_recall_at_k(hits, planted, planted)
-        out[kind].update({"suspects": len(ranked), "precision_at_k": p, "recall_at_k": r})
+        out[kind].update({"suspects": len(ranked), "precision_at_k": p, "recall_at_k": r,
+                          "list_precision": float(hits.mean()) if len(hits) else float("nan"),
+                          "list_to_planted": len(ranked) / planted if planted else float("nan")})
         if kind == "wrong_class" and planted:
             correct = ranked.merge(faults[faults["kind"] == kind][["annotation_id", "true_category_id"]],
                                    on="annotation_id")
             agree = correct["suggested_category_id"] == correct["true_category_id"]
             out[kind]["suggestion_accuracy"] = float(agree.mean()) if len(correct) else float("nan")
+    check_path = rundir / "self_check.json"
+    if check_path.is_file():                   # the audit's own figures beside the truth
+        checks = json.loads(check_path.read_text())
+        for kind in ("wrong_class", "loose_box", "missing_box"):
+            own = checks.get(kind, {})
+            out[kind]["self_auroc"] = own.get("auroc")
+            out[kind]["self_expected_precision"] = own.get("expected_precision")
+            out[kind]["self_fault_share"] = own.get("fault_share")
+            if kind == "missing_box":
+                out[kind]["self_image_auroc"] = own.get("image_auroc")
     return out

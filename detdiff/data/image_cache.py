@@ -13,12 +13,15 @@ Files in ``cache_dir``::
                      NaN where unusable), image_ids int64 [I], image_size int
     problems.json    [{index, image_id, file_name, reason, usable, level}]: level "error" = unusable
                      (not trained on), "warning" = usable with a note (e.g. size differs from the file)
+    crops.u8         uint8 [A, 64, 64, 3] one crop per annotation at the original resolution, for the
+                     cross-fitted crop models (:mod:`detdiff.crossfit.crops`); only when built ``with_crops``
     fingerprint.json written last: its presence marks a complete cache; it names the dataset, the view
                      size and the image files' sizes and times, so a cache is reused only for the same input
 
 Everything is built under temporary names and renamed into place, fingerprint last, so a killed build
 never leaves a cache that looks complete. Pixel descriptors (blur, brightness, contrast, clutter) are
-computed on the full-resolution pixels while they are in memory, so each image is read once overall.
+and object crops are taken from the full-resolution pixels while they are in memory, so each image is read
+once overall.
 """
 
 from __future__ import annotations
@@ -38,11 +41,12 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 from tqdm import tqdm
 
+from detdiff.crossfit.crops import CROPS_FILE, STORE, crop_bytes, object_crops
 from detdiff.data.coco import CocoDataset, UnsafeImagePath, resolve_image_path
 from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
 
 PAD_VALUE = 114
-CACHE_FORMAT_VERSION = 1
+CACHE_FORMAT_VERSION = 2
 IMAGES_FILE = "images.u8"
 META_FILE = "meta.npz"
 PROBLEMS_FILE = "problems.json"
@@ -90,6 +94,7 @@ class ImageCache:
     pixel: np.ndarray          # float32 [I, 4]: PIXEL_DESCRIPTOR_NAMES, NaN where unusable
     problems: list[dict[str, Any]]
     image_size: int
+    crops: np.ndarray | None = None   # uint8 [A, STORE, STORE, 3] per annotation row, or None (built without)
 
     @property
     def num_images(self) -> int:
@@ -119,14 +124,20 @@ class ImageCache:
         images = (np.memmap(cache_dir / IMAGES_FILE, dtype=np.uint8, mode="r", shape=shape) if expected
                   else np.zeros(shape, dtype=np.uint8))
         problems = json.loads((cache_dir / PROBLEMS_FILE).read_text())
-        return cls(cache_dir, images, scale, usable, pixel, problems, size)
+        crops = None
+        if (cache_dir / CROPS_FILE).is_file():
+            count = (cache_dir / CROPS_FILE).stat().st_size // crop_bytes(1)
+            crops = (np.memmap(cache_dir / CROPS_FILE, dtype=np.uint8, mode="r", shape=(count, STORE, STORE, 3))
+                     if count else np.zeros((0, STORE, STORE, 3), np.uint8))
+        return cls(cache_dir, images, scale, usable, pixel, problems, size, crops)
 
 
 def _image_root(dataset: CocoDataset) -> Path:
     return dataset.images_dir if dataset.images_dir is not None else Path(".")
 
 
-def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pixels: bool) -> dict[str, Any]:
+def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pixels: bool,
+                 with_crops: bool) -> dict[str, Any]:
     """What the cache depends on: dataset records, boxes (for clutter), view size, and the files' stat."""
     root = _image_root(dataset).resolve()
     digest = hashlib.sha256()
@@ -142,7 +153,7 @@ def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pi
             pass
     digest.update(stats.tobytes())
     return {"version": CACHE_FORMAT_VERSION, "image_size": int(image_size), "max_pixels": int(max_pixels),
-            "pixel_descriptors": bool(with_pixels), "num_images": int(dataset.num_images),
+            "pixel_descriptors": bool(with_pixels), "crops": bool(with_crops), "num_images": int(dataset.num_images),
             "image_root": str(root), "digest": digest.hexdigest()}
 
 
@@ -229,16 +240,20 @@ def letterbox(image_rgb: np.ndarray, declared_w: int, declared_h: int, image_siz
 _WORKER: dict[str, Any] = {}
 
 
-def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool) -> None:
+def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool,
+                 crops_path: str | None, num_crops: int) -> None:
     cv2.setNumThreads(1)
     _WORKER["images"] = np.memmap(images_path, dtype=np.uint8, mode="r+", shape=shape)
+    _WORKER["crops"] = (np.memmap(crops_path, dtype=np.uint8, mode="r+", shape=(num_crops, STORE, STORE, 3))
+                        if crops_path and num_crops else None)
     _WORKER["max_pixels"] = max_pixels
     _WORKER["with_pixels"] = with_pixels
 
 
-def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray]) -> dict[str, Any]:
-    """Decode image ``index`` into row ``index`` of the memmap; return its scale, descriptors and notes."""
-    index, path, refusal, declared_w, declared_h, boxes_xywh = task
+def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, int]) -> dict[str, Any]:
+    """Decode image ``index`` into row ``index`` of the memmap (and its boxes' crops into the crop rows from
+    ``first_ann``); return its scale, descriptors and notes."""
+    index, path, refusal, declared_w, declared_h, boxes_xywh, first_ann = task
     images = _WORKER["images"]
     size = images.shape[1]
     out: dict[str, Any] = {"index": index, "scale": size / max(declared_w, declared_h), "usable": False,
@@ -259,9 +274,11 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray])
                                         f"resized to the declared size{hint}"))
     try:
         view, scale = letterbox(full, declared_w, declared_h, size)
+        boxes_here = np.asarray(boxes_xywh, dtype=np.float64) * np.array([w / declared_w, h / declared_h] * 2)
         if _WORKER["with_pixels"]:
-            boxes_here = np.asarray(boxes_xywh, dtype=np.float64) * np.array([w / declared_w, h / declared_h] * 2)
             out["pixel"] = pixel_descriptors(full, boxes_here)
+        if _WORKER["crops"] is not None and len(boxes_here):
+            _WORKER["crops"][first_ann:first_ann + len(boxes_here)] = object_crops(full, boxes_here)
     except (cv2.error, ValueError, MemoryError) as exc:
         images[index] = PAD_VALUE
         out["notes"] = [("error", f"decoded but could not be resized or measured ({type(exc).__name__}: {exc})")]
@@ -289,20 +306,23 @@ def _tasks(dataset: CocoDataset):
             refusal = f"unsafe file_name: {exc}"
         except (OSError, ValueError) as exc:
             refusal = f"unreadable file_name: {exc}"
-        yield (i, path, refusal, int(dataset.widths[i]), int(dataset.heights[i]), dataset.boxes[dataset.ann_slice(i)])
+        rows = dataset.ann_slice(i)
+        yield (i, path, refusal, int(dataset.widths[i]), int(dataset.heights[i]), dataset.boxes[rows], rows.start)
 
 
 def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
-                      progress: bool = True, workers: int = 2, pixel_stats: bool = True) -> ImageCache:
+                      progress: bool = True, workers: int = 2, pixel_stats: bool = True,
+                      with_crops: bool = False) -> ImageCache:
     """Decode every image of ``dataset`` once into ``cache_dir`` (see module docstring) and open it.
 
     A complete cache for the same dataset, files and view size is reused as is. Images that cannot be
     used (corrupt, empty, not an image, too many pixels, unsafe path) are marked unusable with a reason
     in ``problems.json`` and the build goes on. ``workers`` > 1 decodes in a process pool of that size.
     ``pixel_stats`` = False skips the descriptors (``analysis.pixel_descriptors`` off): ``pixel`` is NaN.
+    ``with_crops`` also stores one crop per annotation (``crops.u8``) for the cross-fitted crop models.
     """
     cache_dir = Path(cache_dir)
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops)
     fp_path = cache_dir / FINGERPRINT_FILE
     if fp_path.is_file():
         try:
@@ -310,12 +330,14 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                 return ImageCache.open(cache_dir)
         except (OSError, ValueError, KeyError, FileNotFoundError):
             pass
-    outdated = cache_dir / IMAGES_FILE
-    reclaimable = outdated.stat().st_size if outdated.is_file() else 0
-    check_folder_room(cache_dir, max(0, cache_bytes(dataset.num_images, image_size) - reclaimable) + 1_000_000,
-                      "the image cache")
+    outdated = [cache_dir / IMAGES_FILE, cache_dir / CROPS_FILE]
+    reclaimable = sum(f.stat().st_size for f in outdated if f.is_file())
+    num_crops = dataset.num_annotations if with_crops else 0
+    needed = cache_bytes(dataset.num_images, image_size) + crop_bytes(num_crops)
+    check_folder_room(cache_dir, max(0, needed - reclaimable) + 1_000_000, "the image cache")
     fp_path.unlink(missing_ok=True)                       # from here on, no complete cache is claimed
-    outdated.unlink(missing_ok=True)                      # an outdated cache only takes room
+    for stale in outdated:
+        stale.unlink(missing_ok=True)                     # an outdated cache only takes room
 
     num = dataset.num_images
     shape = (num, image_size, image_size, 3)
@@ -325,12 +347,19 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
         np.memmap(images_tmp, dtype=np.uint8, mode="w+", shape=shape).flush()
     else:
         images_tmp.write_bytes(b"")
+    crops_tmp = cache_dir / (CROPS_FILE + tmp_tag) if with_crops else None
+    if crops_tmp is not None:
+        if num_crops:
+            np.memmap(crops_tmp, dtype=np.uint8, mode="w+", shape=(num_crops, STORE, STORE, 3)).flush()
+        else:
+            crops_tmp.write_bytes(b"")
 
     scale = np.full(num, np.nan, dtype=np.float64)
     usable = np.zeros(num, dtype=bool)
     pixel = np.full((num, len(PIXEL_DESCRIPTOR_NAMES)), np.nan, dtype=np.float32)
     problems: list[dict[str, Any]] = []
-    init_args = (str(images_tmp), shape, int(max_pixels), bool(pixel_stats))
+    init_args = (str(images_tmp), shape, int(max_pixels), bool(pixel_stats),
+                 None if crops_tmp is None else str(crops_tmp), num_crops)
     bar = tqdm(total=num, desc="decode images", unit="img", disable=not progress, leave=False)
 
     def collect(result: dict[str, Any]) -> None:
@@ -352,6 +381,8 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                 for task in _tasks(dataset):
                     collect(_decode_task(task))
                 _WORKER["images"].flush()
+                if _WORKER["crops"] is not None:
+                    _WORKER["crops"].flush()
             finally:
                 _WORKER.clear()
                 _WORKER.update(saved)
@@ -361,6 +392,8 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                     collect(result)
     except BaseException:
         images_tmp.unlink(missing_ok=True)
+        if crops_tmp is not None:
+            crops_tmp.unlink(missing_ok=True)
         raise
     finally:
         bar.close()
@@ -373,6 +406,8 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     problems_tmp = cache_dir / (PROBLEMS_FILE + tmp_tag)
     problems_tmp.write_text(json.dumps(problems, indent=1))
     os.replace(images_tmp, cache_dir / IMAGES_FILE)
+    if crops_tmp is not None:
+        os.replace(crops_tmp, cache_dir / CROPS_FILE)
     os.replace(meta_tmp, cache_dir / META_FILE)
     os.replace(problems_tmp, cache_dir / PROBLEMS_FILE)
     fp_tmp = cache_dir / (FINGERPRINT_FILE + tmp_tag)

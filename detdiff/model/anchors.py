@@ -29,16 +29,22 @@ def anchor_shapes(sizes_scales: Sequence[float], ratios: Sequence[float]) -> tor
 
 
 def make_anchors(image_size: int, strides: Sequence[int], sizes: Sequence[float], scales: Sequence[float],
-                 ratios: Sequence[float]) -> torch.Tensor:
+                 ratios: Sequence[float], shapes: Sequence[Sequence[Sequence[float]]] | None = None) -> torch.Tensor:
     """All anchors ``[N, 4]`` xyxy view px for a square ``image_size`` view (centres at cell centres).
 
-    ``N = sum over levels of (image_size / stride)^2 * len(scales) * len(ratios)``.
+    Per location the shapes are ``sizes[level] * scales`` x ``ratios``, or, when ``shapes`` is given, its
+    ``[w, h]`` pairs for that level (e.g. dimension clusters of the dataset's boxes, :mod:`detdiff.recipe`);
+    every level must then have the same number of shapes. ``N = sum over levels of (image_size / stride)^2 * A``.
     """
-    if len(strides) != len(sizes):
+    if shapes is not None:
+        if len(shapes) != len(strides) or len({len(level) for level in shapes}) != 1:
+            raise ValueError(f"model.anchor_shapes must give the same number of [w, h] pairs for each of the "
+                             f"{len(strides)} levels of model.strides, got {shapes}")
+    elif len(strides) != len(sizes):
         raise ValueError(f"model.strides ({list(strides)}) and model.anchor_sizes ({list(sizes)}) "
                          "must have one entry per level")
     levels = []
-    for stride, size in zip(strides, sizes):
+    for level, stride in enumerate(strides):
         if image_size % stride:
             raise ValueError(f"data.image_size {image_size} must be a multiple of every model.strides entry "
                              f"(got stride {stride})")
@@ -46,7 +52,11 @@ def make_anchors(image_size: int, strides: Sequence[int], sizes: Sequence[float]
         centres = (torch.arange(cells, dtype=torch.float32) + 0.5) * stride
         cy, cx = torch.meshgrid(centres, centres, indexing="ij")
         centre = torch.stack((cx, cy), dim=-1).reshape(-1, 1, 2)                     # [H*W, 1, 2]
-        half = 0.5 * anchor_shapes([size * s for s in scales], ratios).unsqueeze(0)   # [1, A, 2]
+        if shapes is None:
+            wh = anchor_shapes([sizes[level] * s for s in scales], ratios)
+        else:
+            wh = torch.tensor(shapes[level], dtype=torch.float32).reshape(-1, 2)
+        half = 0.5 * wh.unsqueeze(0)                                                   # [1, A, 2]
         levels.append(torch.cat((centre - half, centre + half), dim=-1).reshape(-1, 4))
     return torch.cat(levels)
 

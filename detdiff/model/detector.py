@@ -153,7 +153,8 @@ class Detector(nn.Module):
     def __init__(self, num_classes: int, image_size: int, *, width: int = 32, head_width: int = 64,
                  head_depth: int = 1, strides: Sequence[int] = (8, 16, 32),
                  anchor_sizes: Sequence[float] = (20, 40, 80), anchor_scales: Sequence[float] = (0.5, 1.0, 1.6),
-                 anchor_ratios: Sequence[float] = (1.0,)) -> None:
+                 anchor_ratios: Sequence[float] = (1.0,),
+                 anchor_shapes: Sequence[Sequence[Sequence[float]]] | None = None) -> None:
         super().__init__()
         if num_classes < 1:
             raise ValueError(f"num_classes must be >= 1, got {num_classes}")
@@ -161,12 +162,15 @@ class Detector(nn.Module):
         self.strides = tuple(int(s) for s in strides)
         self.settings = dict(width=width, head_width=head_width, head_depth=head_depth, strides=list(strides),
                              anchor_sizes=list(anchor_sizes), anchor_scales=list(anchor_scales),
-                             anchor_ratios=list(anchor_ratios))
+                             anchor_ratios=list(anchor_ratios),
+                             anchor_shapes=None if anchor_shapes is None else [[list(map(float, wh)) for wh in lvl]
+                                                                               for lvl in anchor_shapes])
         self.register_buffer("anchors", make_anchors(image_size, strides, anchor_sizes, anchor_scales,
-                                                     anchor_ratios), persistent=False)
+                                                     anchor_ratios, anchor_shapes), persistent=False)
         self.backbone = Backbone(width, strides)
         self.neck = Neck(self.backbone.channels, head_width)
-        self.head = Head(head_width, head_depth, len(anchor_scales) * len(anchor_ratios), num_classes)
+        per_location = len(anchor_scales) * len(anchor_ratios) if anchor_shapes is None else len(anchor_shapes[0])
+        self.head = Head(head_width, head_depth, per_location, num_classes)
         self.to(memory_format=torch.channels_last)
 
     @classmethod
@@ -176,7 +180,9 @@ class Detector(nn.Module):
         missing = [k for k in keys if k not in model_cfg]
         if missing:
             raise ValueError(f"config 'model' section lacks key(s) {missing}")
-        model = cls(num_classes, image_size, **{k: model_cfg[k] for k in keys})
+        shapes = model_cfg.get("anchor_shapes")
+        model = cls(num_classes, image_size, **{k: model_cfg[k] for k in keys},
+                    anchor_shapes=shapes if isinstance(shapes, list) else None)
         if model_cfg.get("weights"):
             model.load_weights(model_cfg["weights"])
         return model

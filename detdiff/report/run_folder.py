@@ -60,7 +60,7 @@ def read_table(path: Path, columns: tuple[str, ...]) -> pd.DataFrame:
     for column in _TEXT_COLUMNS:
         if column in table:
             table[column] = table[column].fillna("").astype(str)
-    for column in ("significant", "usable", "never_learned"):
+    for column in ("significant", "usable", "never_learned", "probe"):
         if column in table:
             table[column] = table[column].astype(str).str.strip().str.lower().isin(["true", "1", "yes"])
     return table
@@ -88,6 +88,8 @@ class RunFolder:
     metrics: dict[str, Any] = field(default_factory=dict)
     findings: dict[str, Any] = field(default_factory=dict)
     run: dict[str, Any] = field(default_factory=dict)
+    self_check: dict[str, Any] = field(default_factory=dict)
+    recipe: dict[str, Any] = field(default_factory=dict)
 
     @classmethod
     def load(cls, rundir: str | Path) -> RunFolder:
@@ -97,7 +99,8 @@ class RunFolder:
             raise FileNotFoundError(f"{root / 'images.csv'}: not found; is {root} a detdiff run folder?")
         tables = {name: read_table(root / f"{name}.csv", cols) for name, cols in _TABLE_COLUMNS.items()}
         return cls(root=root, **tables, metrics=_read_json(root / "metrics.json", {}),
-                   findings=_read_json(root / "findings.json", {}), run=_read_json(root / "run.json", {}))
+                   findings=_read_json(root / "findings.json", {}), run=_read_json(root / "run.json", {}),
+                   self_check=_read_json(root / "self_check.json", {}), recipe=_read_json(root / "recipe.json", {}))
 
     @property
     def config(self) -> dict[str, Any]:
@@ -136,6 +139,11 @@ class RunFolder:
         if isinstance(ap50, (int, float)) and isinstance(minimum, (int, float)):
             return ap50 >= minimum
         return True
+
+    def list_check(self, kind: str) -> dict[str, Any]:
+        """The self-check figures of one suspect kind (``self_check.json``), {} when the run measured none."""
+        value = self.self_check.get(kind)
+        return value if isinstance(value, dict) else {}
 
     def quality_warning(self) -> str:
         """One plain sentence when the detector is not trustworthy, else ``""``."""

@@ -31,11 +31,18 @@ STREAM_EXPLAINED: dict[str, str] = {
 KIND_TITLES: dict[str, str] = {"wrong_class": "Wrong class", "missing_box": "Missing box",
                                "loose_box": "Loose box", "duplicate_box": "Duplicate box"}
 KIND_EXPLAINED: dict[str, str] = {
-    "wrong_class": "The detector persistently prefers another class for this box.",
+    "wrong_class": "Crop models that never trained on this image give another class a higher probability than "
+                   "the label.",
     "missing_box": "The detector persistently finds an object here that has no annotation.",
-    "loose_box": "The detector's box persistently disagrees with the annotated extent.",
+    "loose_box": "Crop models that never trained on this image draw the object's box elsewhere.",
     "duplicate_box": "Two annotations of the same object.",
 }
+SELF_CHECK_NOTE = ("Before training, the audit made faults of its own: boxes left out of the detector's training "
+                   "(missing boxes), and every box read with another class and with a loosened box by crop models "
+                   "that never trained on its image. How well each kind of planted fault ranks above the real "
+                   "items is the audit's accuracy on this dataset (AUROC, 95% interval); the same scores estimate "
+                   "each suspect's probability of being a real fault, and each list stops where that probability "
+                   "falls below the level shown. The planted faults never appear in any list or table.")
 #: (anchor, label) of each section, for the page's menu
 NAV = [("overview", "Overview"), ("actions", "What to do"), ("stream-loc", "Box regression"),
        ("stream-pos", "Positive class"), ("stream-neg", "Background class"), ("suspects", "Suspects"),
@@ -219,12 +226,16 @@ def _suspects_section(page: Page) -> Markup:
     suspects = page.run.suspects
     counts = suspects["kind"].value_counts()
     body = [el("h2", None, "Suspected label errors", el("span", {"class": "sub"}, f"{len(suspects):,} in all")),
-            el("p", {"class": "lead"}, "Items whose learning dynamics point at the label rather than the image. "
+            el("p", {"class": "lead"}, "Items whose evidence points at the label rather than the image. "
                                        "Each list is ordered by score; review before changing anything."),
             el("div", {"class": "chips"}, [el("a", {"class": "chip", "href": f"#suspects-{kind}"},
                                               f"{KIND_TITLES[kind]}: {int(counts.get(kind, 0)):,}")
                                            for kind in SUSPECT_KINDS]),
             legend(predicted=False, suggested=True)]
+    check = _self_check_table(page.run)
+    if check is not None:
+        body[2:2] = [el("h3", {"id": "self-check"}, "Self-check: how well this audit finds faults here"), check,
+                     el("p", {"class": "note"}, SELF_CHECK_NOTE)]
     for kind in SUSPECT_KINDS:
         cards = suspect_cards(page, kind, plan=False)
         total = int(counts.get(kind, 0))
@@ -233,6 +244,27 @@ def _suspects_section(page: Page) -> Markup:
         body.append(el("p", {"class": "note"}, KIND_EXPLAINED[kind]))
         body.append(el("div", {"class": "grid small"}, cards) if cards else el("p", {"class": "empty"}, "None."))
     return el("section", {"id": "suspects"}, body)
+
+
+def _self_check_table(run: RunFolder) -> Markup | None:
+    """One row per calibrated kind: probes, self-measured AUROC, fault share, list size and expected precision."""
+    rows = []
+    for kind in ("wrong_class", "loose_box", "missing_box"):
+        check = run.list_check(kind)
+        if not check:
+            continue
+        ci = check.get("auroc_ci95") or [None, None]
+        interval = f"{ci[0]:.3f}-{ci[1]:.3f}" if all(isinstance(v, (int, float)) for v in ci) else ""
+        rows.append([KIND_TITLES[kind], num_cell(check.get("probes")), num_cell(check.get("auroc")), interval,
+                     num_cell(check.get("fault_share"), format_percent(check["fault_share"])
+                              if isinstance(check.get("fault_share"), (int, float)) else ""),
+                     num_cell(check.get("listed")), num_cell(check.get("expected_precision")),
+                     num_cell(check.get("level"))])
+    if not rows:
+        return None
+    return data_table([("kind", "text"), ("probes", "num"), ("AUROC", "num"), ("95% interval", "text"),
+                       ("estimated faulty", "num"), ("listed", "num"), ("expected precision", "num"),
+                       ("list level", "num")], rows, sortable=False)
 
 
 def _per_category_ap50(metrics: dict[str, Any]) -> dict[int, float]:
@@ -313,6 +345,12 @@ def _settings_section(page: Page) -> Markup:
                    for k, v in _flatten(page.run.config)]
     body = [el("h2", None, "Run settings"),
             data_table([("setting", "text"), ("value", "text")], [[k, str(v)] for k, v in facts], sortable=False)]
+    reasons = page.run.recipe.get("reasons") if isinstance(page.run.recipe, dict) else None
+    if isinstance(reasons, dict) and reasons:
+        recipe_rows = [[el("td", None, el("code", None, key)), el("td", None, str(text))] for key, text in reasons.items()]
+        notes = [el("p", {"class": "note"}, str(n)) for n in page.run.recipe.get("traded", []) + page.run.recipe.get("notes", [])]
+        body += [el("h3", None, "Recipe fitted to this dataset"),
+                 data_table([("setting", "text"), ("why", "text")], recipe_rows, sortable=False), notes]
     if config_rows:
         body.append(el("details", None, el("summary", None, "Full configuration"),
                        data_table([("key", "text"), ("value", "text")], config_rows, scroll=True)))

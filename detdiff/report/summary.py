@@ -42,6 +42,35 @@ def terminal_summary(rundir: str | Path) -> str:
     kinds = run.suspects["kind"].value_counts()
     counts = ", ".join(f"{int(kinds.get(kind, 0))} {kind}" for kind in SUSPECT_KINDS)
     lines.append(f"Suspected label errors (ranked by evidence, review from the top): {counts}")
+    lines += self_check_lines(run)
     written = "" if run.report_path.exists() else " (not written yet)"
     lines.append(f"Report: {run.report_path}{written}")
     return "\n".join(lines)
+
+
+def self_check_lines(run: RunFolder) -> list[str]:
+    """How well the audit found the faults it planted itself, per kind, and what each cut list is expected to hold."""
+    if not run.self_check:
+        return []
+    lines = ["Self-check (faults the audit planted itself, then looked for like any other):"]
+    for kind in ("wrong_class", "loose_box", "missing_box"):
+        check = run.list_check(kind)
+        if not check:
+            continue
+        auroc, ci = check.get("auroc"), check.get("auroc_ci95")
+        found = f"AUROC {auroc:.3f}" if isinstance(auroc, (int, float)) else "AUROC not measurable"
+        if isinstance(ci, list) and all(isinstance(v, (int, float)) for v in ci):
+            found += f" (95% CI {ci[0]:.3f}-{ci[1]:.3f})"
+        if kind == "missing_box" and isinstance(check.get("image_auroc"), (int, float)):
+            found += f", per image {check['image_auroc']:.3f}"
+        if check.get("calibrated"):
+            precision = check.get("expected_precision")
+            listed = f"list of {check.get('listed', 0)}" + (f", expected precision {precision:.2f}"
+                                                             if isinstance(precision, (int, float)) else "")
+            share = check.get("fault_share")
+            if isinstance(share, (int, float)):
+                listed += f"; about {share:.1%} of the {'proposals' if kind == 'missing_box' else 'boxes'} faulty"
+        else:
+            listed = "not calibrated: the evidence does not separate planted faults here, so no list"
+        lines.append(f"  {kind:<12} {found}; {listed}")
+    return lines

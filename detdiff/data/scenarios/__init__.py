@@ -23,8 +23,12 @@ SCENARIOS: dict[str, Callable[..., DemoPaths]] = {
     "streetcam": streetcam.generate,     # city street at real photo sizes (640 to 4000 px), 24 look-alike classes
 }
 DEFAULT_SCENARIO = "warehouse"
+#: The ``--flips`` a user would choose for each scene from its view's symmetry (the one setting a user must give:
+#: boxes cannot tell it): no up or down from a ceiling or a drone, upright digits, a street with a sky.
+SCENARIO_FLIPS: dict[str, str] = {"warehouse": "dihedral", "aerial": "dihedral", "digits": "none",
+                                  "streetcam": "horizontal"}
 
-__all__ = ["DEFAULT_FAULT_RATES", "DEFAULT_SCENARIO", "SCENARIOS", "DemoPaths", "generate_demo"]
+__all__ = ["DEFAULT_FAULT_RATES", "DEFAULT_SCENARIO", "SCENARIOS", "SCENARIO_FLIPS", "DemoPaths", "generate_demo"]
 
 
 def generate_demo(out_dir: str | Path, *, scenario: str = DEFAULT_SCENARIO, **options: Any) -> DemoPaths:

@@ -1,0 +1,142 @@
+"""The crop model: a small CNN that reads one annotated object from a crop and predicts its class and its box.
+
+It is the second instrument of the audit. The detector's losses measure how hard each item is; this model,
+trained on other images than the one it judges (:mod:`detdiff.crossfit.folds`), says what the object
+looks like to a model that never saw its label: the class it would give (evidence for a wrong class) and
+the box it would draw around it (evidence for a loose box).
+
+Input: a window of twice the annotated box around its centre, resampled to ``input_size`` px from the
+stored crop (:mod:`detdiff.crossfit.crops`), plus four numbers on the box's geometry (log width and height
+relative to the image, log aspect, log side), standardised. In training the window is shifted and scaled at
+random (:func:`sample_windows`), so the model learns to find the object's true extent inside any window
+near it; at prediction time the window is centred on the annotated box.
+
+Outputs: ``C`` class logits and the box as ``(x1, y1, x2, y2)`` in window units (0..1). Losses: cross-entropy
+with label smoothing 0.05 (common practice against noisy labels) and smooth L1 on the box (Girshick, Fast
+R-CNN, eq. 3).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+from torchvision.ops import roi_align
+
+#: Window side in units of the annotated box (the box fills the middle half).
+WINDOW = 2.0
+#: Training jitter of the window: centre shift up to this share of the box side, per axis...
+SHIFT = 0.2
+#: ...and its side scaled by exp(U(-SCALE, SCALE)) per axis (covers boxes off by IoU 0.45 and more).
+SCALE = 0.25
+#: Geometry features fed beside the pixels.
+GEOMETRY_FEATURES = 4
+LABEL_SMOOTHING = 0.05
+BOX_LOSS_WEIGHT = 4.0
+BOX_BETA = 0.05
+
+
+def conv_bn_relu(cin: int, cout: int, stride: int) -> nn.Sequential:
+    """3x3 conv (no bias) + BatchNorm + ReLU."""
+    return nn.Sequential(nn.Conv2d(cin, cout, 3, stride, 1, bias=False), nn.BatchNorm2d(cout), nn.ReLU(inplace=True))
+
+
+class CropModel(nn.Module):
+    """``forward(pixels [B,3,S,S] in 0..1, geometry [B,4]) -> (logits [B,C], box [B,4])`` (see module docstring)."""
+
+    def __init__(self, num_classes: int, *, width: int = 24, input_size: int = 32) -> None:
+        super().__init__()
+        if input_size % 8:
+            raise ValueError(f"crossfit.input_size must be a multiple of 8, got {input_size}")
+        w = int(width)
+        self.num_classes, self.input_size = int(num_classes), int(input_size)
+        self.body = nn.Sequential(conv_bn_relu(3, w, 2), conv_bn_relu(w, 2 * w, 1), conv_bn_relu(2 * w, 3 * w, 2),
+                                  conv_bn_relu(3 * w, 4 * w, 1), conv_bn_relu(4 * w, 6 * w, 2))
+        cells = (input_size // 8) ** 2
+        self.neck = nn.Sequential(nn.Linear(6 * w * cells + GEOMETRY_FEATURES, 192), nn.ReLU(inplace=True))
+        self.classify = nn.Linear(192, num_classes)
+        self.locate = nn.Linear(192, 4)
+        self.to(memory_format=torch.channels_last)
+
+    def forward(self, pixels: torch.Tensor, geometry: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        features = self.body((pixels - 0.5) * 4.0).flatten(1)
+        features = self.neck(torch.cat([features, geometry], dim=1))
+        return self.classify(features), self.locate(features)
+
+
+def centred_windows(n: int) -> np.ndarray:
+    """``[n, 4]`` windows in box units (the box is ``[0, 0, 1, 1]``): :data:`WINDOW` times the box, centred."""
+    half = WINDOW / 2
+    return np.tile([0.5 - half, 0.5 - half, 0.5 + half, 0.5 + half], (n, 1)).astype(np.float32)
+
+
+def sample_windows(rng: np.random.Generator, n: int) -> np.ndarray:
+    """``[n, 4]`` training windows in box units: centred windows shifted and scaled at random."""
+    centre = 0.5 + rng.uniform(-SHIFT, SHIFT, (n, 2))
+    side = WINDOW * np.exp(rng.uniform(-SCALE, SCALE, (n, 2)))
+    return np.concatenate([centre - side / 2, centre + side / 2], axis=1).astype(np.float32)
+
+
+def box_in_window(windows: np.ndarray) -> np.ndarray:
+    """Where the box ``[0, 0, 1, 1]`` lies inside each window ``[n, 4]``, in window units (0..1 inside)."""
+    side = windows[:, 2:] - windows[:, :2]
+    return np.concatenate([-windows[:, :2] / side, (1.0 - windows[:, :2]) / side], axis=1).astype(np.float32)
+
+
+def window_to_box_units(boxes: np.ndarray, windows: np.ndarray) -> np.ndarray:
+    """Inverse of :func:`box_in_window` for predicted boxes ``[n, 4]`` in window units -> box units."""
+    side = np.concatenate([windows[:, 2:] - windows[:, :2]] * 2, axis=1)
+    return boxes * side + np.concatenate([windows[:, :2]] * 2, axis=1)
+
+
+def resample(crops: np.ndarray, windows: np.ndarray, input_size: int, *, extent: tuple[float, float]) -> torch.Tensor:
+    """Pixels ``float [n, 3, S, S]`` in 0..1 of ``windows [n, 4]`` (box units) cut from stored ``crops
+    uint8 [n, H, H, 3]`` that cover ``extent = (low, high)`` box units on both axes (torchvision roi_align)."""
+    stored = torch.from_numpy(np.ascontiguousarray(crops)).permute(0, 3, 1, 2).float().div_(255.0)
+    low, high = extent
+    px = (torch.from_numpy(windows).float() - low) / (high - low) * crops.shape[1]
+    rois = torch.cat([torch.arange(len(windows), dtype=torch.float32)[:, None], px], dim=1)
+    out = roi_align(stored, rois, (input_size, input_size), spatial_scale=1.0, sampling_ratio=2, aligned=True)
+    return out.contiguous(memory_format=torch.channels_last)
+
+
+def flip_batch(pixels: torch.Tensor, boxes: torch.Tensor, flips: np.ndarray) -> tuple[torch.Tensor, torch.Tensor]:
+    """Apply per-item ``flips bool [n, 3]`` (horizontal, vertical, transpose) to pixels and window-unit boxes;
+    the transpose first, then the mirrors (the order of :mod:`detdiff.train.batches`)."""
+    f = torch.from_numpy(flips)
+    t, h, v = f[:, 2], f[:, 0], f[:, 1]
+    pixels = torch.where(t[:, None, None, None], pixels.transpose(-1, -2), pixels)
+    boxes = torch.where(t[:, None], boxes[:, [1, 0, 3, 2]], boxes)
+    pixels = torch.where(h[:, None, None, None], pixels.flip(-1), pixels)
+    boxes = torch.where(h[:, None], torch.stack([1 - boxes[:, 2], boxes[:, 1], 1 - boxes[:, 0], boxes[:, 3]], 1), boxes)
+    pixels = torch.where(v[:, None, None, None], pixels.flip(-2), pixels)
+    boxes = torch.where(v[:, None], torch.stack([boxes[:, 0], 1 - boxes[:, 3], boxes[:, 2], 1 - boxes[:, 1]], 1), boxes)
+    return pixels.contiguous(memory_format=torch.channels_last), boxes
+
+
+def crop_loss(logits: torch.Tensor, boxes: torch.Tensor, labels: torch.Tensor, target_boxes: torch.Tensor) -> torch.Tensor:
+    """Mean cross-entropy (label smoothing) + weighted smooth L1 of the box, over the batch."""
+    cls = F.cross_entropy(logits, labels, label_smoothing=LABEL_SMOOTHING)
+    box = F.smooth_l1_loss(boxes, target_boxes, beta=BOX_BETA)
+    return cls + BOX_LOSS_WEIGHT * box
+
+
+def geometry_raw(boxes_xywh: np.ndarray, widths: np.ndarray, heights: np.ndarray) -> np.ndarray:
+    """``float64 [n, 4]``: log(w / W), log(h / H), log(w / h), log(sqrt(w h)) of boxes in images of ``W x H``."""
+    w = np.maximum(boxes_xywh[:, 2], 1.0)
+    h = np.maximum(boxes_xywh[:, 3], 1.0)
+    return np.stack([np.log(w / np.maximum(widths, 1)), np.log(h / np.maximum(heights, 1)), np.log(w / h),
+                     0.5 * np.log(w * h)], axis=1)
+
+
+def geometry_stats(raw: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and standard deviation (plus 1e-6) of raw geometry features, for :func:`standardise`."""
+    if not len(raw):
+        return np.zeros(GEOMETRY_FEATURES), np.ones(GEOMETRY_FEATURES)
+    return raw.mean(0), raw.std(0) + 1e-6
+
+
+def standardise(raw: np.ndarray, mean: np.ndarray, std: np.ndarray) -> np.ndarray:
+    """``float32`` standardised features."""
+    return ((raw - mean) / std).astype(np.float32)

@@ -1,0 +1,343 @@
+"""The audit's recipe fitted to the dataset: view size, anchor shapes and training lengths, sized to a time budget.
+
+Every setting left at ``auto`` in the config is chosen here from the dataset alone (its box and image sizes, its
+image and box counts) and from speeds measured on this machine; a value given in a config file or by a flag is
+kept as given. Each choice comes with one line of reason. The recipe is printed before training and saved as
+``RUNDIR/recipe.json``, and the resolved values go into ``RUNDIR/config.yaml`` (so ``--resume`` repeats them).
+
+* ``data.image_size``: the side ``S`` of the square training view. An object of ``sqrt(w h)`` px in an image of
+  long side ``L`` is ``sqrt(w h) S / L`` px in the view; ``S`` is the smallest multiple of 32 that brings the
+  ``recipe.object_quantile`` share of the boxes to ``recipe.min_object_px`` or more, within
+  ``[recipe.min_view, recipe.max_view]`` and no larger than the largest image (common practice: objects under
+  about 16 px are hard for any detector; the COCO "small" bin ends at 32 px).
+* ``model.anchor_shapes``: three ``[w, h]`` anchor shapes per detection level from k-means on the boxes' view
+  sizes with the distance ``1 - IoU`` of boxes sharing a centre ("dimension clusters": Redmon & Farhadi,
+  YOLO9000, CVPR 2017), the nine centres sorted by area, smallest three to the finest level (as in YOLOv3).
+* ``train.epochs``: ``recipe.epochs_at_1000 * sqrt(1000 / images)``, within ``[recipe.min_epochs,
+  recipe.max_epochs]``: small datasets need more passes, large ones fewer (more steps in all).
+* ``crossfit.epochs``: ``recipe.crop_epochs_at_4000 * sqrt(4000 / boxes)`` likewise, within
+  ``[recipe.min_crop_epochs, recipe.max_crop_epochs]``.
+* **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image, at least
+  ``recipe.min_budget_minutes``; ``--budget`` on the command line) bounds the training time, estimated from a few
+  timed steps of the detector and of a crop model on this machine (:func:`measure_step_seconds`). The detector
+  gets ``recipe.detector_share`` of it: over that, the view shrinks first (down to ``recipe.min_view``; a
+  detector needs its steps more than its pixels), then the epochs (down to ``recipe.min_epochs``). The crop
+  models get the rest (at least ``1 - detector_share``): over it, their epochs shrink (down to
+  ``recipe.min_crop_epochs``, fractions allowed). Every trade is said.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import torch
+
+from detdiff.data.coco import CocoDataset
+
+AUTO = "auto"
+VIEW_MULTIPLE = 32
+ANCHORS_PER_LEVEL = 3
+KMEANS_ITERATIONS = 60
+TIMED_STEPS = 3
+
+
+@dataclass
+class Recipe:
+    """What :func:`fit_recipe` chose: ``settings`` (dotted key -> value) with one ``reasons`` line each, the
+    estimated seconds of the training parts, and what the budget traded away."""
+
+    settings: dict[str, Any] = field(default_factory=dict)
+    reasons: dict[str, str] = field(default_factory=dict)
+    estimate: dict[str, float] = field(default_factory=dict)
+    traded: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"settings": self.settings, "reasons": self.reasons, "estimate_seconds": self.estimate,
+                "traded": self.traded, "notes": self.notes}
+
+
+def _is_auto(value: Any) -> bool:
+    return isinstance(value, str) and value.strip().lower() == AUTO
+
+
+def box_view_sides(dataset: CocoDataset, image_size: int) -> np.ndarray:
+    """``sqrt(w h)`` of every non-crowd box in a view of side ``image_size`` (px)."""
+    rows = ~dataset.iscrowd
+    long_side = np.maximum(dataset.widths, dataset.heights)[dataset.ann_image_index[rows]].astype(np.float64)
+    side = np.sqrt(np.maximum(dataset.boxes[rows, 2] * dataset.boxes[rows, 3], 0.0))
+    return side * image_size / long_side
+
+
+def choose_view_size(dataset: CocoDataset, cfg: dict[str, Any]) -> tuple[int, str]:
+    """``data.image_size`` from the box sizes (module docstring) and its reason."""
+    rows = ~dataset.iscrowd
+    long_side = np.maximum(dataset.widths, dataset.heights).astype(np.float64)
+    largest = int(math.ceil(long_side.max(initial=VIEW_MULTIPLE) / VIEW_MULTIPLE) * VIEW_MULTIPLE)
+    low, high = int(cfg["min_view"]), min(int(cfg["max_view"]), max(largest, int(cfg["min_view"])))
+    target = float(cfg["min_object_px"])
+    if not rows.any():
+        return low, f"{low} px: no boxes to size the view by"
+    side = np.sqrt(np.maximum(dataset.boxes[rows, 2] * dataset.boxes[rows, 3], 1e-6))
+    needed = target * long_side[dataset.ann_image_index[rows]] / side            # view side for >= target px
+    want = float(np.quantile(needed, float(cfg["object_quantile"])))
+    size = int(min(high, max(low, math.ceil(want / VIEW_MULTIPLE) * VIEW_MULTIPLE)))
+    share = float((box_view_sides(dataset, size) >= target).mean())
+    reason = (f"{size} px: {share:.0%} of the boxes are at least {target:g} px across in the view "
+              f"(wanted {float(cfg['object_quantile']):.0%}, which needs {want:.0f} px; allowed {low}-{high})")
+    return size, reason
+
+
+def dimension_clusters(wh: np.ndarray, k: int, seed: int = 0) -> np.ndarray:
+    """``[k, 2]`` cluster centres of box sizes ``wh [n, 2]`` under the distance 1 - IoU of centred boxes
+    (YOLO9000's dimension clusters), sorted by area. Initialised at size quantiles, so it is deterministic."""
+    wh = np.asarray(wh, dtype=np.float64).reshape(-1, 2)
+    wh = wh[(wh > 0).all(axis=1)]
+    if len(wh) == 0:
+        raise ValueError("dimension_clusters: no box with a positive width and height")
+    area = wh.prod(axis=1)
+    order = np.argsort(area, kind="stable")
+    centres = wh[order[np.linspace(0, len(wh) - 1, k).round().astype(int)]].copy()
+    if len(wh) > 20000:                                          # the centres of a large set need no more
+        wh = wh[np.random.default_rng(seed).choice(len(wh), 20000, replace=False)]
+    for _ in range(KMEANS_ITERATIONS):
+        inter = np.minimum(wh[:, None, 0], centres[None, :, 0]) * np.minimum(wh[:, None, 1], centres[None, :, 1])
+        iou = inter / (wh.prod(axis=1)[:, None] + centres.prod(axis=1)[None, :] - inter)
+        nearest = iou.argmax(axis=1)
+        moved = centres.copy()
+        for j in range(k):                                      # k centres, not boxes: a short loop
+            members = wh[nearest == j]
+            if len(members):
+                moved[j] = np.median(members, axis=0)
+        if np.allclose(moved, centres):
+            break
+        centres = moved
+    return centres[np.argsort(centres.prod(axis=1), kind="stable")]
+
+
+def choose_anchor_shapes(dataset: CocoDataset, image_size: int, num_levels: int) -> tuple[list, str]:
+    """``model.anchor_shapes``: dimension clusters of the boxes in the view, three per level, and the reason."""
+    rows = ~dataset.iscrowd
+    long_side = np.maximum(dataset.widths, dataset.heights)[dataset.ann_image_index[rows]].astype(np.float64)
+    wh = dataset.boxes[rows, 2:] * (image_size / long_side)[:, None]
+    k = ANCHORS_PER_LEVEL * num_levels
+    centres = dimension_clusters(np.maximum(wh, 1.0), k)
+    shapes = [[[round(float(w), 1), round(float(h), 1)] for w, h in centres[i * ANCHORS_PER_LEVEL:(i + 1) * ANCHORS_PER_LEVEL]]
+              for i in range(num_levels)]
+    inter = np.minimum(wh[:, None, 0], centres[None, :, 0]) * np.minimum(wh[:, None, 1], centres[None, :, 1])
+    iou = inter / (wh.prod(axis=1)[:, None] + centres.prod(axis=1)[None, :] - inter)
+    mean_iou = float(iou.max(axis=1).mean()) if len(wh) else float("nan")
+    reason = (f"{k} dimension clusters of the box sizes in the view (mean best IoU {mean_iou:.2f}), "
+              f"smallest three on the finest level")
+    return shapes, reason
+
+
+def scaled_epochs(count: int, reference: float, at: float, low: int, high: int) -> int:
+    """``round(at * sqrt(reference / count))`` within ``[low, high]``."""
+    return int(min(high, max(low, round(at * math.sqrt(reference / max(count, 1))))))
+
+
+def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int) -> tuple[float, float]:
+    """Seconds per training step of the detector (batch ``train.batch_size`` at ``image_size``) and of a crop
+    model (batch ``crossfit.batch_size``) on random data, timed over :data:`TIMED_STEPS` steps after one warm-up."""
+    from detdiff.crossfit.crop_model import CropModel, crop_loss
+    from detdiff.model.detector import Detector
+    from detdiff.model.losses import compute_loss_streams
+
+    state = torch.random.get_rng_state()
+    try:
+        torch.manual_seed(0)
+        batch = int(config["train"]["batch_size"])
+        detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size)
+        optimizer = torch.optim.AdamW(detector.parameters(), lr=1e-4)
+        images = torch.rand(batch, 3, image_size, image_size).contiguous(memory_format=torch.channels_last)
+        side = image_size / 4
+        targets = [{"boxes": torch.tensor([[side, side, 2 * side, 2 * side]]), "labels": torch.zeros(1, dtype=torch.int64)}
+                   for _ in range(batch)]
+
+        def detector_step() -> None:
+            streams = compute_loss_streams(detector(images), detector.anchors, targets, config["loss"], config["log"])
+            optimizer.zero_grad()
+            streams.total.backward()
+            optimizer.step()
+
+        cfg = config["crossfit"]
+        crop = CropModel(num_classes, width=int(cfg["width"]), input_size=int(cfg["input_size"]))
+        crop_optimizer = torch.optim.AdamW(crop.parameters(), lr=1e-4)
+        n, s = int(cfg["batch_size"]), int(cfg["input_size"])
+        pixels = torch.rand(n, 3, s, s).contiguous(memory_format=torch.channels_last)
+        geometry, labels, boxes = torch.zeros(n, 4), torch.zeros(n, dtype=torch.int64), torch.rand(n, 4)
+
+        def crop_step() -> None:
+            logits, predicted = crop(pixels, geometry)
+            crop_optimizer.zero_grad()
+            crop_loss(logits, predicted, labels, boxes).backward()
+            crop_optimizer.step()
+
+        return _timed(detector_step), _timed(crop_step)
+    finally:
+        torch.random.set_rng_state(state)
+
+
+def _timed(step) -> float:
+    step()
+    start = time.perf_counter()
+    for _ in range(TIMED_STEPS):
+        step()
+    return (time.perf_counter() - start) / TIMED_STEPS
+
+
+def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: int | None = None,
+               measure: bool = True) -> tuple[dict[str, Any], Recipe]:
+    """Resolve every ``auto`` setting of ``config`` for ``dataset``; returns the resolved config and the recipe.
+
+    ``measure=False`` skips the timed steps (no budget check; for tests and ``detdiff analyze``).
+    """
+    config = copy.deepcopy(config)
+    cfg = config["recipe"]
+    recipe = Recipe()
+    images = int(usable_images if usable_images is not None else dataset.num_images)
+    boxes = int((~dataset.iscrowd).sum())
+    auto_view = _is_auto(config["data"]["image_size"])
+    auto_epochs = _is_auto(config["train"]["epochs"])
+    auto_crop = _is_auto(config["crossfit"]["epochs"])
+    if auto_view:
+        size, reason = choose_view_size(dataset, cfg)
+        config["data"]["image_size"] = size
+        recipe.reasons["data.image_size"] = reason
+    if auto_epochs:
+        config["train"]["epochs"] = scaled_epochs(images, 1000, float(cfg["epochs_at_1000"]),
+                                                  int(cfg["min_epochs"]), int(cfg["max_epochs"]))
+        recipe.reasons["train.epochs"] = (f"{config['train']['epochs']}: {cfg['epochs_at_1000']} x sqrt(1000 / "
+                                          f"{images} images), within {cfg['min_epochs']}-{cfg['max_epochs']}")
+    if auto_crop:
+        config["crossfit"]["epochs"] = float(scaled_epochs(boxes, 4000, float(cfg["crop_epochs_at_4000"]),
+                                                           int(cfg["min_crop_epochs"]), int(cfg["max_crop_epochs"])))
+        recipe.reasons["crossfit.epochs"] = (f"{config['crossfit']['epochs']}: {cfg['crop_epochs_at_4000']} x "
+                                             f"sqrt(4000 / {boxes} boxes), within {cfg['min_crop_epochs']}-"
+                                             f"{cfg['max_crop_epochs']}")
+    if measure and dataset.num_classes and boxes:
+        _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop)
+    config = _with_anchors(config, dataset, recipe)
+    size = int(config["data"]["image_size"])
+    _restate_traded(recipe, config, dataset)
+    small = float((box_view_sides(dataset, size) < float(cfg["min_object_px"])).mean()) if boxes else 0.0
+    if small > 0.05:
+        recipe.notes.append(f"{small:.0%} of the boxes are under {cfg['min_object_px']} px across in the {size} px "
+                            f"view, too small for the detector to judge (their class and box are still judged by "
+                            f"the crop models at full resolution); --image-size buys resolution at about "
+                            f"(new / {size})^2 the detector time")
+    for key in ("data.image_size", "train.epochs", "crossfit.epochs", "model.anchor_shapes"):
+        section, name = key.split(".")
+        recipe.settings[key] = config[section][name]
+        recipe.reasons.setdefault(key, "given in the config or on the command line")
+    return config, recipe
+
+
+def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe | None = None) -> dict[str, Any]:
+    """``config`` with ``model.anchor_shapes`` resolved when it is ``auto`` (a copy; the reason goes to ``recipe``)."""
+    if not _is_auto(config["model"].get("anchor_shapes")):
+        return config
+    out = copy.deepcopy(config)
+    if not (~dataset.iscrowd).any():
+        out["model"]["anchor_shapes"] = None
+        return out
+    shapes, reason = choose_anchor_shapes(dataset, int(out["data"]["image_size"]), len(out["model"]["strides"]))
+    out["model"]["anchor_shapes"] = shapes
+    if recipe is not None:
+        recipe.reasons["model.anchor_shapes"] = reason
+    return out
+
+
+def budget_seconds(cfg: dict[str, Any], images: int) -> float:
+    """``recipe.budget_minutes`` in seconds; ``auto``: ``seconds_per_image`` per image, at least
+    ``min_budget_minutes``."""
+    if _is_auto(cfg["budget_minutes"]):
+        return max(60.0 * float(cfg["min_budget_minutes"]), float(cfg["seconds_per_image"]) * images)
+    return 60.0 * float(cfg["budget_minutes"])
+
+
+def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, images: int, boxes: int,
+                auto_view: bool, auto_epochs: bool, auto_crop: bool) -> None:
+    """Shrink the ``auto`` settings until the estimated training fits the budget (module docstring)."""
+    cfg, train, crossfit, data = config["recipe"], config["train"], config["crossfit"], config["data"]
+    budget = budget_seconds(cfg, images)
+    detector_budget = budget * float(cfg["detector_share"]) if crossfit["enabled"] else budget
+    folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])
+    speeds: dict[int, float] = {}                  # seconds per detector step, timed once per view size
+
+    def detector_seconds() -> float:
+        size = int(data["image_size"])
+        if size not in speeds:
+            speeds[size], recipe.estimate["crop_step_s"] = measure_step_seconds(
+                _with_anchors(config, dataset), dataset.num_classes, size)
+        return int(train["epochs"]) * math.ceil(images / batch) * speeds[size]
+
+    while detector_seconds() > detector_budget:
+        if auto_view and int(data["image_size"]) > int(cfg["min_view"]):
+            new = max(int(cfg["min_view"]), int(data["image_size"]) - VIEW_MULTIPLE)
+            recipe.traded.append(f"data.image_size {data['image_size']} -> {new} for the budget")
+            data["image_size"] = new
+        elif auto_epochs and int(train["epochs"]) > int(cfg["min_epochs"]):
+            new = max(int(cfg["min_epochs"]), int(math.floor(int(train["epochs"]) * 0.8)))
+            recipe.traded.append(f"train.epochs {train['epochs']} -> {new} for the budget")
+            train["epochs"] = new
+        else:
+            break
+    det_s = detector_seconds()
+    crop_s = 0.0
+    if crossfit["enabled"]:
+        per_epoch = folds * math.ceil(boxes * (folds - 1) / folds / crop_batch) * recipe.estimate["crop_step_s"]
+        crop_budget = max(budget - det_s, budget * (1 - float(cfg["detector_share"])))
+        if auto_crop and float(crossfit["epochs"]) * per_epoch > crop_budget:
+            new = max(float(cfg["min_crop_epochs"]), round(crop_budget / per_epoch, 1))
+            if new < float(crossfit["epochs"]):
+                recipe.traded.append(f"crossfit.epochs {crossfit['epochs']} -> {new} for the budget")
+                crossfit["epochs"] = new
+        crop_s = float(crossfit["epochs"]) * per_epoch
+    recipe.estimate.update({"detector_step_s": round(speeds[int(data["image_size"])], 4),
+                            "detector_training_s": round(det_s, 1), "crop_models_s": round(crop_s, 1),
+                            "budget_s": round(budget, 1)})
+    if det_s + crop_s > budget * 1.05:
+        recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over the budget of "
+                            f"{budget / 60:.1f} min, with nothing left to trade; raise --budget or set smaller values")
+
+
+def _restate_traded(recipe: Recipe, config: dict[str, Any], dataset: CocoDataset) -> None:
+    """Reasons of the settings the budget changed: what was wanted, what is kept, and what that costs."""
+    cfg = config["recipe"]
+    for key in ("data.image_size", "train.epochs", "crossfit.epochs"):
+        trades = [t for t in recipe.traded if t.startswith(key + " ")]
+        if not trades:
+            continue
+        section, name = key.split(".")
+        value, wanted = config[section][name], trades[0].split()[1]
+        text = f"{value}: reduced from {wanted} to fit the training budget"
+        if key == "data.image_size":
+            share = float((box_view_sides(dataset, int(value)) >= float(cfg["min_object_px"])).mean())
+            text += f"; {share:.0%} of the boxes are at least {cfg['min_object_px']} px across in this view"
+        recipe.reasons[key] = text
+    keys = list(dict.fromkeys(t.split()[0] for t in recipe.traded))
+    firsts = {k: next(t for t in recipe.traded if t.split()[0] == k).split()[1] for k in keys}
+    recipe.traded = [f"{k} {firsts[k]} -> {config[k.split('.')[0]][k.split('.')[1]]} for the budget" for k in keys]
+
+
+def format_recipe(recipe: Recipe) -> str:
+    """The recipe as printed before training: one line per setting with its reason, then estimates and trades."""
+    lines = ["Recipe (fitted to this dataset; explicit settings are kept):"]
+    for key, value in recipe.settings.items():
+        shown = f"{len(value)} levels x {len(value[0])} shapes" if key == "model.anchor_shapes" and value else value
+        lines.append(f"  {key:<20} {shown}  - {recipe.reasons.get(key, '')}")
+    if "detector_training_s" in recipe.estimate:
+        total = recipe.estimate["detector_training_s"] + recipe.estimate["crop_models_s"]
+        lines.append(f"  estimated training: detector {recipe.estimate['detector_training_s'] / 60:.1f} min, crop models "
+                     f"{recipe.estimate['crop_models_s'] / 60:.1f} min, {total / 60:.1f} min in all on this machine "
+                     f"(budget {recipe.estimate['budget_s'] / 60:.1f} min)")
+    lines += [f"  traded: {t}" for t in recipe.traded]
+    lines += [f"  note: {n}" for n in recipe.notes]
+    return "\n".join(lines)

@@ -1,0 +1,85 @@
+"""The recipe fitted to a dataset: view size, dimension clusters, epochs, and the time budget."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from detdiff.config import load_config
+from detdiff.data.coco import CocoDataset
+from detdiff.recipe import (box_view_sides, choose_view_size, dimension_clusters, fit_recipe, format_recipe,
+                            scaled_epochs)
+
+
+def _dataset(boxes_wh: np.ndarray, size: tuple[int, int] = (640, 480), per_image: int = 10) -> CocoDataset:
+    n = len(boxes_wh)
+    images = int(np.ceil(n / per_image))
+    rng = np.random.default_rng(0)
+    xy = rng.uniform(0, 1, (n, 2)) * (np.array(size) - boxes_wh)
+    return CocoDataset(
+        image_ids=np.arange(1, images + 1), file_names=[f"{i}.jpg" for i in range(images)],
+        widths=np.full(images, size[0]), heights=np.full(images, size[1]), category_ids=np.array([1, 2]),
+        category_names=["a", "b"], supercategories=["x", "x"], ann_ids=np.arange(1, n + 1),
+        ann_image_index=np.arange(n) // per_image, labels=np.arange(n) % 2,
+        boxes=np.concatenate([xy, boxes_wh], axis=1).astype(np.float64), areas=boxes_wh.prod(axis=1).astype(float),
+        iscrowd=np.zeros(n, bool))
+
+
+def test_dimension_clusters_find_the_three_box_shapes() -> None:
+    # Three well-separated shapes with 5% jitter: k-means with the 1 - IoU distance (YOLO9000, Redmon &
+    # Farhadi, CVPR 2017) must put one centre on each, sorted by area.
+    rng = np.random.default_rng(1)
+    shapes = np.array([[8.0, 8.0], [40.0, 20.0], [30.0, 90.0]])
+    wh = np.repeat(shapes, 200, axis=0) * rng.uniform(0.95, 1.05, (600, 2))
+    centres = dimension_clusters(wh, 3)
+    assert np.allclose(centres, shapes, rtol=0.06)
+
+
+def test_view_size_brings_the_wanted_share_of_boxes_to_the_target() -> None:
+    cfg = load_config()["recipe"]
+    wh = np.repeat([[20.0, 20.0], [60.0, 60.0]], [300, 700], axis=0)           # 30% small boxes in 640 px images
+    ds = _dataset(wh)
+    size, reason = choose_view_size(ds, {**cfg, "object_quantile": 0.8, "min_object_px": 16, "max_view": 640})
+    assert size % 32 == 0
+    # 80% of the boxes must reach 16 px: the small ones need 16 * 640 / 20 = 512 px
+    assert size == 512 and (box_view_sides(ds, size) >= 16).mean() >= 0.8
+    assert (box_view_sides(ds, size - 32) >= 16).mean() < 0.8
+    assert "512" in reason
+    capped, _ = choose_view_size(ds, {**cfg, "object_quantile": 0.8, "min_object_px": 16, "max_view": 320})
+    assert capped == 320
+
+
+def test_epochs_shrink_with_the_dataset() -> None:
+    assert scaled_epochs(1000, 1000, 30, 8, 60) == 30
+    assert scaled_epochs(250, 1000, 30, 8, 60) == 60
+    assert scaled_epochs(100_000, 1000, 30, 8, 60) == 8
+
+
+def test_fit_recipe_resolves_auto_and_keeps_explicit_values() -> None:
+    wh = np.random.default_rng(2).uniform(15, 80, (400, 2))
+    ds = _dataset(wh)
+    config = load_config()
+    resolved, recipe = fit_recipe(ds, config, measure=False)
+    assert isinstance(resolved["data"]["image_size"], int) and isinstance(resolved["train"]["epochs"], int)
+    shapes = resolved["model"]["anchor_shapes"]
+    assert len(shapes) == len(resolved["model"]["strides"]) and all(len(level) == 3 for level in shapes)
+    assert set(recipe.reasons) >= {"data.image_size", "train.epochs", "crossfit.epochs", "model.anchor_shapes"}
+    assert "Recipe" in format_recipe(recipe)
+    explicit = load_config(overrides={"data": {"image_size": 224}, "train": {"epochs": 5}})
+    kept, recipe2 = fit_recipe(ds, explicit, measure=False)
+    assert kept["data"]["image_size"] == 224 and kept["train"]["epochs"] == 5
+    assert recipe2.reasons["train.epochs"].startswith("given")
+
+
+def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:
+    wh = np.random.default_rng(3).uniform(15, 80, (400, 2))
+    ds = _dataset(wh)
+    config = load_config(overrides={"recipe": {"budget_minutes": 0.0001, "max_view": 256, "min_budget_minutes": 0}})
+    resolved, recipe = fit_recipe(ds, config, measure=True)
+    assert recipe.traded and recipe.traded[0].startswith("data.image_size")
+    assert any(t.startswith("train.epochs") for t in recipe.traded)
+    assert resolved["data"]["image_size"] == config["recipe"]["min_view"]
+    assert resolved["train"]["epochs"] == config["recipe"]["min_epochs"]
+    assert resolved["crossfit"]["epochs"] == config["recipe"]["min_crop_epochs"]
+    assert recipe.notes and "budget" in recipe.notes[0]
+    assert recipe.estimate["detector_step_s"] > 0

@@ -67,12 +67,17 @@ class AuditRun:
 
 def audit(annotations: str | Path, images: str | Path, out: str | Path, *, config: str | Path | None = None,
           epochs: int | None = None, image_size: int | None = None, batch_size: int | None = None,
-          device: str | None = None, seed: int | None = None, resume: bool = False, progress: bool = True,
-          report: bool = True, thumbnails: bool | None = None) -> AuditRun:
-    """Run the full audit (check, train with loss logging, analyse, report) and return the run."""
+          device: str | None = None, seed: int | None = None, flips: str | None = None, resume: bool = False,
+          progress: bool = True, report: bool = True, thumbnails: bool | None = None) -> AuditRun:
+    """Run the full audit (check, train with loss logging, analyse, report) and return the run.
+
+    ``config`` is a YAML path or a packaged config's name; the keywords after it override its values
+    (``flips``: ``none`` | ``horizontal`` | ``both`` | ``dihedral``, the ``train.flips`` key).
+    """
     from detdiff.pipeline import run_audit, run_overrides
 
-    overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed)
+    overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed,
+                              flips=flips)
     run_audit(annotations, images, out, config_path=config, overrides=overrides, resume=resume,
               progress=progress, make_report=report, thumbnails=thumbnails)
     return AuditRun(Path(out))

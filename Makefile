@@ -5,7 +5,7 @@ DEMO_DIR ?= demo_data
 RUN_DIR ?= runs/demo
 CONFIG ?= topdown
 
-.PHONY: demo test bench install install-test clean
+.PHONY: demo test bench wheel install install-test clean
 
 $(VENV)/bin/python:
 	python3 -m venv $(VENV)
@@ -36,5 +36,10 @@ test: install-test
 bench: install-test
 	$(PY) tests/benchmarks/run_all.py
 
+## make wheel: build dist/detdiff-VERSION-py3-none-any.whl (configs and report assets inside) for pip install elsewhere
+wheel: install-test
+	rm -rf build
+	$(PY) -m pip wheel --no-deps --no-build-isolation --wheel-dir dist .
+
 clean:
-	rm -rf $(DEMO_DIR) runs bench_out .pytest_cache
+	rm -rf $(DEMO_DIR) runs bench_out .pytest_cache build dist

@@ -73,16 +73,18 @@ class AuditRun:
 
 def audit(annotations: str | Path, images: str | Path, out: str | Path, *, config: str | Path | None = None,
           epochs: int | None = None, image_size: int | None = None, batch_size: int | None = None,
-          device: str | None = None, seed: int | None = None, budget: float | None = None, resume: bool = False,
-          progress: bool = True, report: bool = True, thumbnails: bool | None = None) -> AuditRun:
+          device: str | None = None, seed: int | None = None, flips: str | None = None, budget: float | None = None,
+          resume: bool = False, progress: bool = True, report: bool = True, thumbnails: bool | None = None) -> AuditRun:
     """Run the full audit (check, recipe, train with loss logging, cross-fit, analyse, report) and return the run.
 
-    ``budget``: minutes of training to fit the recipe to (default: the config's ``recipe.budget_minutes``).
+    ``config`` is a YAML path or a packaged config's name; the keywords after it override its values
+    (``flips``: ``none`` | ``horizontal`` | ``both`` | ``dihedral``, the ``train.flips`` key; ``budget``: minutes
+    of training to fit the recipe to, default the config's ``recipe.budget_minutes``).
     """
     from detdiff.pipeline import run_audit, run_overrides
 
     overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed,
-                              budget=budget)
+                              flips=flips, budget=budget)
     run_audit(annotations, images, out, config_path=config, overrides=overrides, resume=resume,
               progress=progress, make_report=report, thumbnails=thumbnails)
     return AuditRun(Path(out))

@@ -11,6 +11,7 @@ import sys
 from pathlib import Path
 
 from detdiff import __version__
+from detdiff.config import FLIP_CHOICES, packaged_configs
 
 
 def _expected_errors() -> tuple[type[BaseException], ...]:
@@ -51,7 +52,8 @@ def _overrides(args: argparse.Namespace) -> dict:
     from detdiff.pipeline import run_overrides
 
     return run_overrides(image_size=args.image_size, epochs=args.epochs, batch_size=args.batch_size,
-                         device=args.device, seed=args.seed, threads=args.threads, budget=args.budget)
+                         device=args.device, seed=args.seed, threads=args.threads, flips=args.flips,
+                         budget=args.budget)
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
@@ -83,6 +85,25 @@ def _cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_config_list(args: argparse.Namespace) -> int:
+    from detdiff.config import config_summary, packaged_configs
+
+    names = packaged_configs()
+    width = max(map(len, names))
+    for name in names:
+        print(f"{name:<{width}}  {config_summary(name)}")
+    print("print one with 'detdiff config show NAME'; use it with '--config NAME', or save, edit and "
+          "pass '--config FILE'")
+    return 0
+
+
+def _cmd_config_show(args: argparse.Namespace) -> int:
+    from detdiff.config import packaged_config
+
+    sys.stdout.write(packaged_config(args.name).read_text(encoding="utf-8"))
+    return 0
+
+
 def _add_report_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--top", type=int, default=None, help="items per list in the report (default: config)")
     p.add_argument("--no-thumbnails", action="store_true",
@@ -101,50 +122,68 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     p = sub.add_parser("check", help="lint a COCO annotation file (no training)")
-    p.add_argument("annotations", type=Path)
+    p.add_argument("annotations", type=Path, help="COCO annotation JSON file")
     p.add_argument("--images", type=Path, default=None, help="image root folder (file_name is relative to it)")
     p.add_argument("--json", action="store_true", help="print findings as JSON")
     p.add_argument("--verify-images", action="store_true", help="also open every image (sizes, corrupt files)")
     p.set_defaults(func=_cmd_check)
 
-    p = sub.add_parser("demo", help="generate a demo dataset with planted label faults (warehouse, aerial, digits)")
-    p.add_argument("--out", type=Path, required=True)
+    p = sub.add_parser("demo", help="generate a demo dataset with planted label faults")
+    p.add_argument("--out", type=Path, required=True, help="folder for annotations.json, images/ and truth.json")
     p.add_argument("--scenario", choices=_SCENARIO_NAMES, default="warehouse",
-                   help="warehouse (packing table, the default), aerial (drone over a marina and car park) "
-                        "or digits (real handwritten digits as house numbers on photographs)")
-    p.add_argument("--num-images", type=int, default=300)
-    p.add_argument("--seed", type=int, default=0)
+                   help="warehouse (packing table, the default), aerial (drone over a marina and car park), "
+                        "digits (real handwritten digits as house numbers on photographs) or streetcam (street "
+                        "cameras at real photo sizes)")
+    p.add_argument("--num-images", type=int, default=300, help="images to draw (default: 300)")
+    p.add_argument("--seed", type=int, default=0, help="random seed of the scene and the planted faults (default: 0)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=_cmd_demo)
 
+    configs = ", ".join(packaged_configs())
     p = sub.add_parser("audit", help="check, train the small detector with loss logging, analyse, report")
-    p.add_argument("annotations", type=Path)
-    p.add_argument("--images", type=Path, required=True)
+    p.add_argument("annotations", type=Path, help="COCO annotation JSON file")
+    p.add_argument("--images", type=Path, required=True, help="image root folder (file_name is relative to it)")
     p.add_argument("--out", type=Path, required=True, help="run folder for every result")
-    p.add_argument("--config", default=None, help="YAML file or a name in configs/ (default, topdown, fast, ci)")
-    p.add_argument("--epochs", type=int, default=None)
+    p.add_argument("--config", default=None,
+                   help=f"YAML file, or the name of a packaged config: {configs} (without --config: default; "
+                        f"'detdiff config list' says what each is for)")
+    p.add_argument("--epochs", type=int, default=None, help="training epochs (default: config train.epochs)")
     p.add_argument("--image-size", type=int, default=None, help="side of the letterboxed training view, px")
-    p.add_argument("--batch-size", type=int, default=None)
-    p.add_argument("--device", choices=["cpu", "cuda", "auto"], default=None)
-    p.add_argument("--seed", type=int, default=None)
+    p.add_argument("--batch-size", type=int, default=None, help="images per optimizer step (default: config)")
+    p.add_argument("--flips", choices=FLIP_CHOICES, default=None,
+                   help="random training flips (default: config train.flips): none for text, digits or handed "
+                        "classes (left/right signs); horizontal where gravity gives an up; both or dihedral (adds "
+                        "the transpose) only for views with no up, down, left or right: ceiling, aerial, microscope")
+    p.add_argument("--device", choices=["cpu", "cuda", "auto"], default=None,
+                   help="where to train (default: config; auto = cuda when available)")
+    p.add_argument("--seed", type=int, default=None, help="seed of initialisation, batch order and flips")
     p.add_argument("--threads", type=int, default=None, help="torch threads (default: all cores)")
     p.add_argument("--budget", type=float, default=None, metavar="MINUTES",
                    help="training time to fit the recipe to, estimated on this machine before training (default: "
                         "config recipe.budget_minutes); over it, epochs and then the view size are reduced")
     p.add_argument("--resume", action="store_true", help="continue after the last finished epoch")
-    p.add_argument("--no-report", action="store_true")
+    p.add_argument("--no-report", action="store_true", help="stop after the tables (write no HTML report or plots)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     _add_report_options(p)
     p.set_defaults(func=_cmd_audit)
 
     p = sub.add_parser("analyze", help="recompute the tables of a run folder from its training log")
-    p.add_argument("rundir", type=Path)
+    p.add_argument("rundir", type=Path, help="run folder of an audit")
     p.set_defaults(func=_cmd_analyze)
 
     p = sub.add_parser("report", help="write the HTML report and plots of a run folder")
-    p.add_argument("rundir", type=Path)
+    p.add_argument("rundir", type=Path, help="run folder of an audit")
     _add_report_options(p)
     p.set_defaults(func=_cmd_report)
+
+    p = sub.add_parser("config", help="list or print the packaged configs")
+    config_sub = p.add_subparsers(dest="config_command", required=True, metavar="ACTION")
+    q = config_sub.add_parser("list", help="name and purpose of each packaged config")
+    q.set_defaults(func=_cmd_config_list)
+    q = config_sub.add_parser("show", help="print a packaged config (save it, edit it, pass it to --config)")
+    q.add_argument("name", nargs="?", default="default", choices=packaged_configs(),
+                   help=f"one of {configs} (default: default, which documents every key)")
+    q.set_defaults(func=_cmd_config_show)
     return parser
 
 

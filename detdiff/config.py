@@ -1,15 +1,26 @@
-"""Run configuration: ``configs/default.yaml`` documents every key; other files override only what differs."""
+"""Run configuration: the packaged ``default`` config documents every key; other files override only what differs.
+
+The named configs (``default``, ``topdown``, ``fast``, ``ci``) ship inside the package, in ``detdiff/configs/``,
+and are read with :mod:`importlib.resources`, so an installed wheel finds them from any working folder.
+``detdiff config show NAME`` prints one for editing.
+"""
 
 from __future__ import annotations
 
 import copy
+from importlib.resources import files
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import yaml
 
-CONFIG_DIR = Path(__file__).resolve().parent.parent / "configs"
-DEFAULT_CONFIG = CONFIG_DIR / "default.yaml"
+if TYPE_CHECKING:
+    from importlib.resources.abc import Traversable
+
+CONFIG_DIR: Traversable = files("detdiff").joinpath("configs")
+DEFAULT_CONFIG: Traversable = CONFIG_DIR.joinpath("default.yaml")
+#: values of ``train.flips`` (the keys of :data:`detdiff.train.batches.FLIP_MODES`, listed here without torch)
+FLIP_CHOICES = ("none", "horizontal", "both", "dihedral")
 
 
 class ConfigError(ValueError):
@@ -30,9 +41,9 @@ def _merge(base: dict, override: dict, where: str) -> dict:
     return out
 
 
-def _read_yaml(path: Path) -> dict:
+def _read_yaml(path: Path | Traversable) -> dict:
     try:
-        data = yaml.safe_load(Path(path).read_text()) or {}
+        data = yaml.safe_load(path.read_text(encoding="utf-8")) or {}
     except (OSError, yaml.YAMLError) as exc:
         raise ConfigError(f"{path}: cannot read config: {exc}") from exc
     if not isinstance(data, dict):
@@ -40,15 +51,38 @@ def _read_yaml(path: Path) -> dict:
     return data
 
 
-def resolve_config_path(name_or_path: str | Path) -> Path:
-    """Accept a path, or a bare name of a file in ``configs/`` (``fast`` or ``fast.yaml``)."""
+def packaged_configs() -> list[str]:
+    """Names of the configs shipped in the package, ``default`` first, then alphabetical."""
+    names = sorted(entry.name[:-len(".yaml")] for entry in CONFIG_DIR.iterdir() if entry.name.endswith(".yaml"))
+    return sorted(names, key=lambda name: name != "default")
+
+
+def packaged_config(name: str) -> Traversable:
+    """The packaged config file called ``name`` (``fast`` or ``fast.yaml``); :class:`ConfigError` if none."""
+    stem = name[:-len(".yaml")] if name.endswith(".yaml") else name
+    if stem not in packaged_configs():
+        raise ConfigError(f"{name}: no such packaged config (packaged: {', '.join(packaged_configs())})")
+    return CONFIG_DIR.joinpath(f"{stem}.yaml")
+
+
+def config_summary(name: str) -> str:
+    """First sentence of a packaged config's opening comment (what it is for)."""
+    first = packaged_config(name).read_text(encoding="utf-8").splitlines()[0].lstrip("# ").strip()
+    return first.split(". ")[0].rstrip(".")
+
+
+def resolve_config_path(name_or_path: str | Path) -> Path | Traversable:
+    """Accept a YAML file's path, or the name of a packaged config (``fast`` or ``fast.yaml``)."""
     path = Path(name_or_path)
-    if path.exists():
+    if path.is_file():
         return path
-    for candidate in (CONFIG_DIR / f"{name_or_path}", CONFIG_DIR / f"{name_or_path}.yaml"):
-        if candidate.exists():
-            return candidate
-    raise ConfigError(f"{name_or_path}: no such config file (also looked in {CONFIG_DIR})")
+    if path.name != str(name_or_path):
+        raise ConfigError(f"{name_or_path}: no such config file")
+    try:
+        return packaged_config(str(name_or_path))
+    except ConfigError:
+        raise ConfigError(f"{name_or_path}: no such config file, nor a packaged config "
+                          f"(packaged: {', '.join(packaged_configs())})") from None
 
 
 def load_config(path: str | Path | None = None, overrides: dict[str, dict[str, Any]] | None = None) -> dict:

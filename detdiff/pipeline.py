@@ -18,7 +18,7 @@ import numpy as np
 
 from detdiff import __version__
 from detdiff.atomic import write_json_atomic
-from detdiff.config import load_config, load_saved_config, save_config
+from detdiff.config import FLIP_CHOICES, ConfigError, load_config, load_saved_config, save_config
 from detdiff.data.coco import CocoDataset, build_dataset, load_saved_dataset, read_coco_json, save_dataset
 
 DATASET_FILE = "dataset.npz"
@@ -130,11 +130,13 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
 
 def run_overrides(*, image_size: int | None = None, epochs: int | None = None, batch_size: int | None = None,
                   device: str | None = None, seed: int | None = None, threads: int | None = None,
-                  budget: float | None = None) -> dict:
+                  flips: str | None = None, budget: float | None = None) -> dict:
     """Config overrides from the command line or the API (``None`` = keep the config file's value)."""
+    if flips is not None and flips not in FLIP_CHOICES:
+        raise ConfigError(f"flips must be one of {', '.join(FLIP_CHOICES)}, got {flips!r}")
     return {"data": {"image_size": image_size},
             "train": {"epochs": epochs, "batch_size": batch_size, "device": device, "seed": seed,
-                      "threads": threads},
+                      "threads": threads, "flips": flips},
             "recipe": {"budget_minutes": budget}}
 
 

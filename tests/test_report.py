@@ -308,3 +308,19 @@ def test_lint_counts_prefer_exact_totals_over_the_capped_list():
     assert lint_code_counts(listed_only).to_dict("records") == [
         {"severity": "warning", "code": "a", "count": 2}, {"severity": "error", "code": "b", "count": 1}]
     assert lint_totals(listed_only) == {"error": 1, "warning": 2}
+
+
+@pytest.mark.parametrize("low, high, width", [(0.05, 5.0, 145), (0.025, 10.0, 160), (0.047, 5.0, 244),
+                                              (0.01, 100.0, 300), (0.5, 2.0, 60), (0.01, 10.0, 30)])
+def test_lift_ticks_are_plain_and_apart(low: float, high: float, width: float) -> None:
+    from detdiff.report.plots import _label_width, lift_ticks
+
+    font = 9 * 110 / 72                          # the plots' 9 pt labels at 110 dpi
+    ticks = lift_ticks(low, high, width, font)
+    assert 1.0 in ticks and all(low <= t <= high for t in ticks)
+    assert all(len(f"{t:g}") <= 4 for t in ticks)                 # plain numbers: 0.05, 0.3, 1, 20
+    px = width / np.log10(high / low)
+    for a, b in zip(ticks, ticks[1:]):        # neighbouring labels never touch (the "0.050.12.5" of issue #15)
+        assert np.log10(b / a) * px >= (_label_width(f"{a:g}", font) + _label_width(f"{b:g}", font)) / 2
+    if width >= 140:
+        assert len(ticks) >= 3

@@ -356,3 +356,18 @@ def test_flipped_training_logs_boxes_in_original_coordinates(tiny, tmp_path, fli
     logged = log.object_field("pred_iou")[-1][trained]
     assert np.allclose(iou, logged, atol=2e-3)
     assert (logged > 0.05).mean() > 0.5       # not trivially zero: the boxes overlap where they should
+
+
+def test_progress_bar_shows_one_rate() -> None:
+    from types import SimpleNamespace
+
+    from detdiff.train.hooks import ProgressHook
+
+    hook = ProgressHook(num_epochs=2)
+    hook.before_epoch(SimpleNamespace(images_in_epoch=8, epoch=0))
+    ones = torch.ones(4)
+    streams = SimpleNamespace(image={"num_pos": ones, "loc_sum": ones, "pos_sum": 2 * ones, "neg_sum": ones})
+    hook.after_step(None, SimpleNamespace(image_index=np.arange(4)), streams)
+    shown = str(hook.bar)
+    hook.close()
+    assert shown.count("/s") == 1 and "pos 2.000" in shown, shown

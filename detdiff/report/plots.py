@@ -39,7 +39,9 @@ _LINE_STYLES: list[tuple[str, str, Any]] = [
     (PALETTE["vermillion"], "o", "-"), (PALETTE["blue"], "s", "--"), (PALETTE["green"], "^", "-."),
     (PALETTE["orange"], "D", ":"), (PALETTE["purple"], "v", (0, (5, 1, 1, 1))),
 ]
-_LIFT_TICKS = [0.05, 0.1, 0.2, 0.5, 1, 2, 5, 10, 20, 50, 100]
+#: tick series of the log lift axis, densest first: 1-2-5, 1-3, decades (plain numbers: 0.5, 1, 2)
+_LIFT_MANTISSAS: tuple[tuple[int, ...], ...] = ((1, 2, 5), (1, 3), (1,))
+_LIFT_RANGE = (0.01, 100.0)      # the lift axis never spans more (a lift of 0 has no place on a log axis)
 _STYLE = {
     "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "axes.spines.top": False,
     "axes.spines.right": False, "axes.grid": True, "grid.alpha": 0.25, "grid.linewidth": 0.6,
@@ -108,6 +110,41 @@ def plot_loss_curves(panels: list[dict[str, Any]], epochs: list[int], *, title: 
         return _save(fig, path)
 
 
+def _label_width(text: str, font_px: float) -> float:
+    """Approximate width of a number's tick label in px (digit ~0.64 em, point ~0.32 em in DejaVu Sans)."""
+    return font_px * sum(0.32 if c == "." else 0.64 for c in text)
+
+
+def lift_ticks(low: float, high: float, width_px: float, font_px: float) -> list[float]:
+    """Ticks of a log lift axis from ``low`` to ``high`` drawn ``width_px`` wide with labels ``font_px`` high.
+
+    The densest 1-2-5, 1-3 or decade series whose neighbouring labels keep half a letter apart (the tick at
+    either end may be left out for it); ``[1.0]`` alone when even the decades would touch.
+    """
+    px_per_decade = width_px / max(1e-9, np.log10(high / low))
+
+    def apart(a: float, b: float) -> bool:
+        room = (_label_width(f"{a:g}", font_px) + _label_width(f"{b:g}", font_px)) / 2 + font_px / 2
+        return bool(np.log10(b / a) * px_per_decade >= room)
+
+    for mantissas in _LIFT_MANTISSAS:
+        ticks = [m * 10.0 ** e for e in range(-3, 3) for m in mantissas if low <= m * 10.0 ** e <= high]
+        if len(ticks) > 3 and not apart(ticks[0], ticks[1]):
+            ticks = ticks[1:]
+        if len(ticks) > 3 and not apart(ticks[-2], ticks[-1]):
+            ticks = ticks[:-1]
+        if all(apart(a, b) for a, b in zip(ticks, ticks[1:])):
+            return ticks
+    return [1.0]
+
+
+def _lift_limits(effect: np.ndarray, low: np.ndarray, high: np.ndarray) -> tuple[float, float]:
+    """x limits of the lift panel: every point and CI with a margin, 1 inside, within :data:`_LIFT_RANGE`."""
+    lo = min(float(np.min(low)), float(np.min(effect)), 1.0) / 1.3
+    hi = max(float(np.max(high)), float(np.max(effect)), 1.0) * 1.3
+    return max(lo, _LIFT_RANGE[0]), min(hi, _LIFT_RANGE[1])
+
+
 def _cause_label(row: pd.Series) -> str:
     words = descriptor_words(str(row["descriptor"]))
     bin_text = str(row["bin"]).strip()
@@ -132,7 +169,8 @@ def plot_causes(causes: pd.DataFrame, *, stream: str, path: Path, max_rows: int 
     with matplotlib.rc_context(_STYLE):
         counts = [min(max_rows, int(rows["test"].isin(t).sum())) for t, *_ in tests]
         fig = Figure(figsize=(10.0, 1.3 + 0.27 * max(1, max(counts))), layout="constrained")
-        axes = fig.subplots(1, 2)
+        axes = fig.subplots(1, 2, width_ratios=[1.0, 1.8])
+        lift_axes: list[tuple[Any, float, float]] = []
         for ax, (test, xlabel, reference, log_scale), count in zip(axes, tests, counts):
             part = rows[rows["test"].isin(test)].copy()
             part["effect"] = pd.to_numeric(part["effect"], errors="coerce")
@@ -143,7 +181,7 @@ def plot_causes(causes: pd.DataFrame, *, stream: str, path: Path, max_rows: int 
             part = part.assign(_rank=list(zip(~part["significant"].astype(bool), -strength)))
             part = part.sort_values("_rank").head(max_rows).sort_values("effect")
             ax.axvline(reference, color=PALETTE["ink"], linewidth=0.8)
-            ax.set_xlabel(xlabel)
+            ax.set_xlabel(xlabel, loc="right")
             if part.empty:
                 ax.text(0.5, 0.5, "no rows", transform=ax.transAxes, ha="center", va="center", color=PALETTE["grey"])
                 ax.set_yticks([])
@@ -167,9 +205,7 @@ def plot_causes(causes: pd.DataFrame, *, stream: str, path: Path, max_rows: int 
             ax.grid(axis="y", visible=False)
             if log_scale:
                 ax.set_xscale("log")
-                ax.xaxis.set_major_locator(FixedLocator(_LIFT_TICKS))
-                ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-                ax.xaxis.set_minor_formatter(NullFormatter())
+                lift_axes.append((ax, *_lift_limits(effect, low, high)))
             else:
                 ax.set_xlim(-1.05, 1.05)
         keys = [Line2D([], [], marker="D", color=colour, linewidth=2, label="significant (*)"),
@@ -178,6 +214,15 @@ def plot_causes(causes: pd.DataFrame, *, stream: str, path: Path, max_rows: int 
         fig.legend(handles=keys, loc="outside upper right", ncols=2)
         fig.suptitle(f"{STREAM_TITLES.get(stream, stream)}: what goes with a high score (95% CI)",
                      x=0.01, ha="left", fontweight="bold")
+        for ax, lo, hi in lift_axes:
+            ax.set_xlim(lo, hi)
+        if lift_axes:
+            fig.draw_without_rendering()         # lays the figure out, so the lift axis has its final width
+        font_px = float(_STYLE["font.size"]) * fig.dpi / 72
+        for ax, lo, hi in lift_axes:
+            ax.xaxis.set_major_locator(FixedLocator(lift_ticks(lo, hi, ax.get_window_extent().width, font_px)))
+            ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+            ax.xaxis.set_minor_formatter(NullFormatter())
         return _save(fig, path)
 
 

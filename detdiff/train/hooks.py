@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import os
 import shutil
-import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -117,21 +116,22 @@ class CheckpointHook(Hook):
 
 
 class ProgressHook(Hook):
-    """A tqdm bar per epoch with images/s and the running mean of the three streams (per image, / num_pos)."""
+    """A tqdm bar per epoch with images/s and the running mean of the three streams (per image, / num_pos).
+
+    The rate is tqdm's own, averaged over the epoch so far (``smoothing=0``); the postfix holds the losses only.
+    """
 
     def __init__(self, num_epochs: int) -> None:
         self.num_epochs = num_epochs
         self.bar: tqdm | None = None
         self.sums = np.zeros(3)
         self.seen = 0
-        self.start = 0.0
 
     def before_epoch(self, state: TrainState) -> None:
-        self.bar = tqdm(total=state.images_in_epoch, unit="img", leave=False,
+        self.bar = tqdm(total=state.images_in_epoch, unit="img", leave=False, smoothing=0,
                         desc=f"epoch {state.epoch + 1}/{self.num_epochs}")
         self.sums[:] = 0.0
         self.seen = 0
-        self.start = time.perf_counter()
 
     def after_step(self, state: TrainState, batch: Batch, streams: LossStreams) -> None:
         norm = streams.image["num_pos"].clamp(min=1).float()
@@ -139,8 +139,7 @@ class ProgressHook(Hook):
         self.sums += per_image.sum(1).cpu().numpy()
         self.seen += len(batch.image_index)
         loc, pos, neg = self.sums / max(1, self.seen)
-        rate = self.seen / max(1e-9, time.perf_counter() - self.start)
-        self.bar.set_postfix_str(f"{rate:.1f} img/s  loc {loc:.3f}  pos {pos:.3f}  neg {neg:.3f}", refresh=False)
+        self.bar.set_postfix_str(f"loc {loc:.3f}  pos {pos:.3f}  neg {neg:.3f}", refresh=False)
         self.bar.update(len(batch.image_index))
 
     def after_epoch(self, state: TrainState) -> None:

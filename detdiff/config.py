@@ -8,6 +8,8 @@ from typing import Any
 
 import yaml
 
+from detdiff.atomic import write_text_atomic
+
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "configs"
 DEFAULT_CONFIG = CONFIG_DIR / "default.yaml"
 
@@ -73,4 +75,4 @@ def load_saved_config(path: str | Path) -> dict:
 
 def save_config(config: dict, path: str | Path) -> None:
     """Write the config actually used, so a run can be repeated exactly."""
-    Path(path).write_text(yaml.safe_dump(config, sort_keys=False))
+    write_text_atomic(path, yaml.safe_dump(config, sort_keys=False))

@@ -68,7 +68,8 @@ def _alive(pid: int) -> bool:
 
 
 def _size(path: Path) -> int:
-    """Bytes on disk of a file or a folder's files (allocated blocks where known: a sparse file counts what it holds)."""
+    """Bytes on disk of a file or of a folder's files (allocated blocks where known: a sparse file counts what
+    it holds)."""
     paths = [path] if not path.is_dir() else [p for p in path.rglob("*") if p.is_file()]
     total = 0
     for p in paths:

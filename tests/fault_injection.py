@@ -13,9 +13,9 @@ What "the same outputs" means (:func:`compare_runs`):
   without the ``seconds`` timing;
 - tensor-identical: checkpoint.pt (model, optimizer, scheduler, epoch, RNG states);
 - identical but for timings: run.json without ``timings``, ``train_seconds``, ``images_per_second``,
-  ``data_loading_share`` and keys ending in ``_seconds``; self_check.json without keys ending in ``_seconds``; recipe.json without
-  ``estimate_seconds`` (times measured on the machine); report/index.html with the training-time and
-  images-per-second cells masked.
+  ``data_loading_share`` and keys ending in ``_seconds``; self_check.json without keys ending in
+  ``_seconds``; recipe.json without ``estimate_seconds`` (times measured on the machine);
+  report/index.html with the training-time and images-per-second cells masked.
 """
 
 from __future__ import annotations
@@ -64,13 +64,18 @@ class Audit:
     images: Path
     extra: list[str] = field(default_factory=lambda: ["--config", "ci", "--quiet"])
 
-    def launch(self, rundir: Path, *, fault: str | None = None, resume: bool = False,
-               timeout: float = 600) -> Launch:
-        """Run the audit into ``rundir`` in a child process (``DETDIFF_FAULT=fault`` when given)."""
+    def child_env(self, fault: str | None = None) -> dict[str, str]:
+        """The environment of a child audit: this checkout first on the path, ``DETDIFF_FAULT=fault`` if given."""
         env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(REPO), os.environ.get("PYTHONPATH", "")]))
         env.pop("DETDIFF_FAULT", None)
         if fault:
             env["DETDIFF_FAULT"] = fault
+        return env
+
+    def launch(self, rundir: Path, *, fault: str | None = None, resume: bool = False,
+               timeout: float = 600) -> Launch:
+        """Run the audit into ``rundir`` in a child process (``DETDIFF_FAULT=fault`` when given)."""
+        env = self.child_env(fault)
         cmd = [sys.executable, "-m", "detdiff", "audit", str(self.annotations), "--images", str(self.images),
                "--out", str(rundir), *self.extra, *(["--resume"] if resume else [])]
         start = time.perf_counter()
@@ -78,14 +83,14 @@ class Audit:
         return Launch(fault, proc.returncode, proc.stdout, proc.stderr, time.perf_counter() - start)
 
     def trace(self, rundir: Path) -> tuple[Launch, dict[str, dict[str, float]]]:
-        """An uninterrupted run with the trace hook: per stage (first time it runs) seconds and write-opens."""
+        """An uninterrupted run with the trace hook: per stage (first time it runs) seconds, write-opens, disk use."""
         trace_file = rundir.parent / f"{rundir.name}.trace.jsonl"
         trace_file.unlink(missing_ok=True)
         launch = self.launch(rundir, fault=f"trace:{trace_file}")
         stages: dict[str, dict[str, float]] = {}
         for line in trace_file.read_text().splitlines():
             row = json.loads(line)
-            stages.setdefault(row["stage"], {"seconds": row["seconds"], "write_opens": row["write_opens"]})
+            stages.setdefault(row.pop("stage"), row)
         trace_file.unlink()
         return launch, stages
 

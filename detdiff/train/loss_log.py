@@ -10,8 +10,9 @@ Layout (one folder per finished epoch, each field one ``.npy`` file, rows in dat
 
 An epoch is written into ``epoch_0003.tmp-<pid>/`` through memory maps (so the writer holds no copy of the
 arrays in RAM), then renamed to ``epoch_0003/`` in one step: a folder without the ``.tmp`` suffix is always
-complete. Each memory-mapped file has its disk blocks reserved as it is created, so a full disk raises
-ENOSPC there instead of SIGBUS when a page is first written. With several processes each rank writes ``epoch_0003.rank<k>/`` and rank 0 merges them.
+complete. With several processes each rank writes ``epoch_0003.rank<k>/`` and rank 0 merges them. Each
+memory-mapped file has its disk blocks reserved as it is created, so a full disk raises ENOSPC there
+instead of SIGBUS when a page is first written.
 
 Stream normalisation: every ``*_sum`` field is a raw sum over anchors; ``image.num_pos`` and
 ``object.num_anchors`` are the counts. The training objective of an image is

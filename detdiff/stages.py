@@ -110,8 +110,10 @@ def is_disk_full(exc: BaseException, folder: Path | None = None) -> bool:
 
 
 def size_text(num_bytes: float) -> str:
-    """Bytes as MB (or GB from 1 GB on), one decimal."""
-    return f"{num_bytes / 1e9:.1f} GB" if num_bytes >= 1e9 else f"{num_bytes / 1e6:.1f} MB"
+    """Bytes as kB under 1 MB, MB with one decimal, GB with one decimal from 1 GB on."""
+    if num_bytes >= 1e9:
+        return f"{num_bytes / 1e9:.1f} GB"
+    return f"{num_bytes / 1e6:.1f} MB" if num_bytes >= 1e6 else f"{num_bytes / 1e3:.0f} kB"
 
 
 def disk_full_error(exc: BaseException, continue_with: str) -> InsufficientSpaceError | None:

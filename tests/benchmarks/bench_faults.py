@@ -19,7 +19,8 @@ over the uninterrupted run, leftovers reclaimed; then totals and the seconds. Mo
 0.9 plus ``--random`` more drawn from ``numpy.random.default_rng(SEED)``; dataset: warehouse demo of
 ``--num-images`` images, seed 5, config ci.
 
-Run: ``.venv/bin/python tests/benchmarks/bench_faults.py [--num-images 24] [--random 1] [--stages train,report]``
+Run: ``.venv/bin/python tests/benchmarks/bench_faults.py [--num-images 24] [--random 1] [--stages train,report]
+[--cases kill,enospc,tmpfs]``
 """
 
 from __future__ import annotations
@@ -48,7 +49,8 @@ from detdiff.stages import STAGE_WORDS  # noqa: E402
 SEED = 18
 FRACTIONS = (0.1, 0.5, 0.9)
 TMPFS_BYTES = 64 * 2**20
-_RECLAIMED = re.compile(r"removed (\d+) temporary files? .* \(([\d.]+) (MB|GB) reclaimed\)")
+_RECLAIMED = re.compile(r"removed (\d+) temporary files? .* \(([\d.]+) (kB|MB|GB) reclaimed\)")
+_UNIT_MB = {"kB": 1e-3, "MB": 1.0, "GB": 1e3}
 
 
 def real_disk_available() -> bool:
@@ -79,7 +81,7 @@ def failed_stage(launch: Launch) -> str | None:
     """The stage named by a disk-full line (by its words), or ``"up-front"`` for a room check's refusal."""
     last = (launch.stderr.strip().splitlines() or [""])[-1]
     for name, words in STAGE_WORDS.items():
-        if f"cannot write {words}" in last:
+        if re.search(rf"cannot write {re.escape(words)}(?: \(|\.)", last):
             return name
     return "up-front" if "needs about" in last and "free" in last else None
 
@@ -90,11 +92,12 @@ def main() -> int:
     parser.add_argument("--random", type=int, default=0, help="random moments per stage and case, beyond 0.1/0.5/0.9")
     parser.add_argument("--stages", default=",".join(STAGES))
     parser.add_argument("--real-disk", choices=["auto", "yes", "no"], default="auto")
+    parser.add_argument("--cases", default="kill,enospc,tmpfs", help="which of kill, enospc, tmpfs to run")
     args = parser.parse_args()
     stages = args.stages.split(",")
     rng = np.random.default_rng(SEED)
     real_disk = args.real_disk == "yes" or (args.real_disk == "auto" and real_disk_available())
-    cases = ["kill", "enospc"] + (["tmpfs"] if real_disk else [])
+    cases = [c for c in args.cases.split(",") if c != "tmpfs" or real_disk]
     start = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="bench_faults_") as tmp:
         root = Path(tmp)
@@ -137,7 +140,7 @@ def main() -> int:
                     reclaimed = _RECLAIMED.search(resumed.stderr)
                     if reclaimed:
                         row["leftovers"] += int(reclaimed.group(1))
-                        row["MB reclaimed"] += float(reclaimed.group(2)) * (1000 if reclaimed.group(3) == "GB" else 1)
+                        row["MB reclaimed"] += float(reclaimed.group(2)) * _UNIT_MB[reclaimed.group(3)]
                     if resumed.returncode == 0:
                         comparison = compare_runs(run, root / "reference")
                         row["rows changed"] += table_rows_changed(run, root / "reference")

@@ -1,12 +1,13 @@
 """Command line: argument parsing only; each subcommand calls one function of the package.
 
 ``main(argv) -> int`` is importable and testable. Expected failures (bad input, unusable folders,
-a diverging run) become one line on stderr and exit status 2, never a traceback.
+a diverging run, a full disk at any stage) become one line on stderr and exit status 2, never a traceback.
 """
 
 from __future__ import annotations
 
 import argparse
+import shlex
 import sys
 from pathlib import Path
 
@@ -22,7 +23,7 @@ def _expected_errors() -> tuple[type[BaseException], ...]:
     errors: list[type[BaseException]] = [ConfigError, CocoFormatError, UnsafeImagePath, RunFolderError,
                                          FileNotFoundError, PermissionError, NotADirectoryError]
     try:
-        from detdiff.data.image_cache import InsufficientSpaceError
+        from detdiff.stages import InsufficientSpaceError
         from detdiff.train.loop import TrainingDiverged
 
         errors += [TrainingDiverged, InsufficientSpaceError]
@@ -187,11 +188,21 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _continue_command(argv: list[str]) -> str:
+    """The command that goes on after a full disk: an audit with ``--resume`` added, any other command as it was."""
+    resume = ["--resume"] if argv and argv[0] == "audit" and "--resume" not in argv else []
+    return shlex.join(["detdiff", *argv, *resume])
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``detdiff`` command; returns the exit status."""
+    from detdiff.stages import disk_full_as_one_line
+
+    argv = sys.argv[1:] if argv is None else list(argv)
     args = build_parser().parse_args(argv)
     try:
-        return int(args.func(args))
+        with disk_full_as_one_line(_continue_command(argv)):
+            return int(args.func(args))
     except KeyboardInterrupt:
         print("detdiff: interrupted; finished epochs are kept (use --resume)", file=sys.stderr)
         return 130

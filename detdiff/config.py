@@ -14,6 +14,8 @@ from typing import TYPE_CHECKING, Any
 
 import yaml
 
+from detdiff.atomic import write_text_atomic
+
 if TYPE_CHECKING:
     from importlib.resources.abc import Traversable
 
@@ -107,4 +109,4 @@ def load_saved_config(path: str | Path) -> dict:
 
 def save_config(config: dict, path: str | Path) -> None:
     """Write the config actually used, so a run can be repeated exactly."""
-    Path(path).write_text(yaml.safe_dump(config, sort_keys=False))
+    write_text_atomic(path, yaml.safe_dump(config, sort_keys=False))

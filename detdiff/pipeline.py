@@ -2,10 +2,13 @@
 
 Each stage writes its results into the run folder before the next starts, so a failure later on loses
 nothing already computed, and ``detdiff analyze`` / ``detdiff report`` can redo the later stages alone.
+Each runs inside :func:`detdiff.stages.stage`, which names its folder when the disk fills; an audit first
+removes the temporary files an interrupted run left (:mod:`detdiff.leftovers`).
 """
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import sys
@@ -20,6 +23,8 @@ from detdiff import __version__
 from detdiff.atomic import write_json_atomic
 from detdiff.config import FLIP_CHOICES, ConfigError, load_config, load_saved_config, save_config
 from detdiff.data.coco import CocoDataset, build_dataset, load_saved_dataset, read_coco_json, save_dataset
+from detdiff.leftovers import leftovers_line, remove_leftovers
+from detdiff.stages import DISK_FULL_ERRNOS, stage
 
 DATASET_FILE = "dataset.npz"
 RECIPE_FILE = "recipe.json"
@@ -47,6 +52,8 @@ def prepare_rundir(rundir: Path) -> None:
         probe.write_bytes(b"x" * 4096)
         probe.unlink()
     except OSError as exc:
+        if exc.errno in DISK_FULL_ERRNOS:
+            raise                               # the disk is full: said as such by detdiff.stages
         raise RunFolderError(f"{rundir}: output folder is not writable ({exc.strerror or exc})") from exc
 
 
@@ -85,8 +92,10 @@ def analyze(rundir: str | Path, dataset: CocoDataset | None = None, config: dict
     rundir = Path(rundir)
     if dataset is None or config is None:
         dataset, config = load_run(rundir)
-    tables = analyze_run(rundir, dataset, config)
-    write_tables(tables, rundir, dataset)
+    with stage("analysis", rundir):
+        tables = analyze_run(rundir, dataset, config)
+    with stage("tables", rundir):
+        write_tables(tables, rundir, dataset)
     return tables
 
 
@@ -99,9 +108,10 @@ def report(rundir: str | Path, *, top: int | None = None, thumbnails: bool | Non
     if config is None:
         _, config = load_run(rundir)
     rcfg = config["report"]
-    return write_report(rundir, top=int(top if top is not None else rcfg["top"]),
-                        thumbnails=bool(rcfg["thumbnails"] if thumbnails is None else thumbnails),
-                        thumbnail_size=int(rcfg["thumbnail_size"]))
+    with stage("report", rundir, "report"):
+        return write_report(rundir, top=int(top if top is not None else rcfg["top"]),
+                            thumbnails=bool(rcfg["thumbnails"] if thumbnails is None else thumbnails),
+                            thumbnail_size=int(rcfg["thumbnail_size"]))
 
 
 def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dict, rundir: Path, *,
@@ -156,32 +166,57 @@ def _resolve_config(rundir: Path, config_path: str | Path | None, overrides: dic
     return config
 
 
+def _saved_recipe(rundir: Path, config: dict):
+    """The recipe an interrupted run fitted (``recipe.json``), if the config resumed with still has its values."""
+    from detdiff.recipe import Recipe
+
+    path = rundir / RECIPE_FILE
+    if not (path.is_file() and (rundir / "config.yaml").is_file()):
+        return None
+    saved = json.loads(path.read_text())
+    recipe = Recipe(saved["settings"], saved["reasons"], saved["estimate_seconds"], saved["traded"], saved["notes"])
+    for key, value in recipe.settings.items():
+        section, name = key.split(".")
+        if config[section].get(name) != value:
+            return None
+    return recipe
+
+
 def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path, config: dict, resume: bool,
                   progress: bool, timings: dict[str, float]):
     """Main process only: folder, lint + ingest, recipe and config, image cache (each written to ``rundir``)."""
-    from detdiff.data.image_cache import build_image_cache
+    from detdiff.crossfit.crops import crop_bytes
+    from detdiff.data.image_cache import build_image_cache, cache_bytes
     from detdiff.recipe import fit_recipe, format_recipe
 
     t0 = time.perf_counter()
-    prepare_rundir(rundir)
-    if not resume:
-        for stale in ("log", "checkpoint.pt", "crossfit"):
-            target = rundir / stale
-            if target.is_dir():
-                shutil.rmtree(target)
-            elif target.exists():
-                target.unlink()
-    dataset = ingest(annotations, images_dir, rundir, config)
-    timings["check_s"] = time.perf_counter() - t0
-    config, recipe = fit_recipe(dataset, config, measure=True)
-    print(format_recipe(recipe), flush=True)
-    write_json_atomic(rundir / RECIPE_FILE, recipe.to_json())
-    save_config(config, rundir / "config.yaml")
+    with stage("check", rundir):
+        prepare_rundir(rundir)
+        removed, freed = remove_leftovers(rundir)
+        if removed:
+            print(leftovers_line(rundir, removed, freed), file=sys.stderr, flush=True)
+        if not resume:
+            for stale in ("log", "checkpoint.pt", "crossfit"):
+                target = rundir / stale
+                if target.is_dir():
+                    shutil.rmtree(target)
+                elif target.exists():
+                    target.unlink()
+        dataset = ingest(annotations, images_dir, rundir, config)
+        timings["check_s"] = time.perf_counter() - t0
+        recipe = _saved_recipe(rundir, config) if resume else None
+        if recipe is None:
+            config, recipe = fit_recipe(dataset, config, measure=True)
+            write_json_atomic(rundir / RECIPE_FILE, recipe.to_json())
+        print(format_recipe(recipe), flush=True)
+        save_config(config, rundir / "config.yaml")
     timings["recipe_s"] = time.perf_counter() - t0 - timings["check_s"]
-    cache = build_image_cache(dataset, rundir / "cache", int(config["data"]["image_size"]),
-                              max_pixels=int(config["data"]["max_pixels"]), progress=progress,
-                              pixel_stats=bool(config["analysis"]["pixel_descriptors"]),
-                              with_crops=bool(config["crossfit"]["enabled"]))
+    size, with_crops = int(config["data"]["image_size"]), bool(config["crossfit"]["enabled"])
+    needed = cache_bytes(dataset.num_images, size) + (crop_bytes(dataset.num_annotations) if with_crops else 0)
+    with stage("decode", rundir, "cache", needed):
+        cache = build_image_cache(dataset, rundir / "cache", size, max_pixels=int(config["data"]["max_pixels"]),
+                                  progress=progress, pixel_stats=bool(config["analysis"]["pixel_descriptors"]),
+                                  with_crops=with_crops)
     timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"] - timings["recipe_s"]
     return dataset, cache, config
 
@@ -201,6 +236,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     from detdiff.train.distributed import barrier, broadcast_object, init_distributed, shutdown
     from detdiff.train.evaluate import final_pass
     from detdiff.train.loop import train_and_log
+    from detdiff.train.resources import log_bytes
 
     rundir = Path(rundir)
     config = _resolve_config(rundir, config_path, overrides or {}, resume)
@@ -223,22 +259,25 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
         cache = ImageCache.open(rundir / "cache")
         config = load_saved_config(rundir / "config.yaml")       # the recipe's resolved values
     missing_probes = plant_missing_probes(dataset, config["probes"], int(config["train"]["seed"]))
-    if dist.is_main:
-        write_json_atomic(rundir / PROBES_FILE, probes_record(dataset, missing_probes))
     trained = training_copy(dataset, missing_probes)
     t1 = time.perf_counter()
-    result = train_and_log(trained, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
+    with stage("train", rundir, "log", log_bytes(dataset, config)):
+        if dist.is_main:
+            write_json_atomic(rundir / PROBES_FILE, probes_record(dataset, missing_probes))
+        result = train_and_log(trained, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
     timings["train_s"] = time.perf_counter() - t1
     shutdown()                                   # evaluation, analysis and report run on the main process only
     if not dist.is_main:
         return AuditResult(rundir, None, {}, "")
 
     t2 = time.perf_counter()
-    metrics = final_pass(result.model, dataset, cache, config, rundir)
+    with stage("evaluate", rundir):
+        metrics = final_pass(result.model, dataset, cache, config, rundir)
     timings["evaluate_s"] = time.perf_counter() - t2
     if config["crossfit"]["enabled"]:
         t_fit = time.perf_counter()
-        cross_fit_run(dataset, trained, cache, config, rundir, progress=progress)
+        with stage("crossfit", rundir, "crossfit"):
+            cross_fit_run(dataset, trained, cache, config, rundir, progress=progress)
         timings["crossfit_s"] = time.perf_counter() - t_fit
     run_info = {
         "detdiff_version": __version__, "annotations": str(Path(annotations).resolve()),
@@ -250,7 +289,8 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
         "train_seconds": result.seconds, "images_per_second": result.images_per_second,
         "data_loading_share": result.data_share, "timings": timings,
     }
-    write_json_atomic(rundir / "run.json", run_info)
+    with stage("summary", rundir):
+        write_json_atomic(rundir / "run.json", run_info)
     t3 = time.perf_counter()
     tables = analyze(rundir, dataset, config)
     timings["analysis_s"] = time.perf_counter() - t3
@@ -262,7 +302,8 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
         report_path = report(rundir, top=top, thumbnails=thumbnails, config=config)
         timings["report_s"] = time.perf_counter() - t4
     run_info["timings"] = timings
-    write_json_atomic(rundir / "run.json", run_info)
+    with stage("summary", rundir):
+        write_json_atomic(rundir / "run.json", run_info)
     from detdiff.report.summary import terminal_summary
 
     return AuditResult(rundir, report_path, metrics, terminal_summary(rundir))

@@ -11,6 +11,7 @@ Scores are accumulated losses: higher = harder.
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 from typing import Any
 
@@ -58,7 +59,9 @@ def literal(text: object) -> str:
 
 def _save(fig: Figure, path: Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, format="png", facecolor="white")
+    tmp = path.with_name(f"{path.name}.tmp-{os.getpid()}")
+    fig.savefig(tmp, format="png", facecolor="white")
+    os.replace(tmp, path)
     return path
 
 

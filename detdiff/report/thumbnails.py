@@ -118,7 +118,9 @@ def render_shots(run: RunFolder, shots: list[Shot], out_dir: Path) -> set[str]:
         fx, fy = pixels.shape[1] / width, pixels.shape[0] / height
         for shot in row_shots:
             picture = _cut(pixels, shot, fx, fy, width, height)
-            if cv2.imwrite(str(out_dir / f"{shot.name}.jpg"), picture, [cv2.IMWRITE_JPEG_QUALITY, 85]):
+            encoded, jpeg = cv2.imencode(".jpg", picture, [cv2.IMWRITE_JPEG_QUALITY, 85])
+            if encoded:                     # written by Python, so a full disk raises instead of returning False
+                (out_dir / f"{shot.name}.jpg").write_bytes(jpeg.tobytes())
                 written.add(shot.name)
     return written
 

@@ -69,7 +69,8 @@ def save_checkpoint(path: str | Path, *, model: nn.Module, optimizer: torch.opti
                "image_size": int(getattr(plain, "image_size", 0)), "extra": extra or {}}
     tmp = path.with_name(f"{path.name}.tmp-{os.getpid()}")
     try:
-        torch.save(payload, tmp)
+        with open(tmp, "wb") as fh:          # a file object: a failed write surfaces as OSError (ENOSPC), chained
+            torch.save(payload, fh)
         os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

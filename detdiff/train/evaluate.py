@@ -25,7 +25,7 @@ import torch
 from pycocotools.coco import COCO
 from pycocotools.cocoeval import COCOeval
 
-from detdiff.atomic import write_json_atomic
+from detdiff.atomic import reserve, write_json_atomic
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache
 from detdiff.model.postprocess import pooled_object_features, postprocess_detections
@@ -164,6 +164,7 @@ def final_pass(model: torch.nn.Module, dataset: CocoDataset, cache: ImageCache, 
                 num_channels = int(outputs["features"][0].shape[1])
                 features = np.lib.format.open_memmap(features_tmp, mode="w+", dtype=np.float32,
                                                      shape=(dataset.num_annotations, num_channels))
+                reserve(features_tmp)
                 features[...] = np.nan
             rows = np.concatenate([np.arange(dataset.image_offsets[i], dataset.image_offsets[i + 1]) for i in index])
             rows = rows[train_rows[rows]].astype(np.int64)

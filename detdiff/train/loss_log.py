@@ -10,7 +10,9 @@ Layout (one folder per finished epoch, each field one ``.npy`` file, rows in dat
 
 An epoch is written into ``epoch_0003.tmp-<pid>/`` through memory maps (so the writer holds no copy of the
 arrays in RAM), then renamed to ``epoch_0003/`` in one step: a folder without the ``.tmp`` suffix is always
-complete. With several processes each rank writes ``epoch_0003.rank<k>/`` and rank 0 merges them.
+complete. With several processes each rank writes ``epoch_0003.rank<k>/`` and rank 0 merges them. Each
+memory-mapped file has its disk blocks reserved as it is created, so a full disk raises ENOSPC there
+instead of SIGBUS when a page is first written.
 
 Stream normalisation: every ``*_sum`` field is a raw sum over anchors; ``image.num_pos`` and
 ``object.num_anchors`` are the counts. The training objective of an image is
@@ -28,6 +30,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+
+from detdiff.atomic import reserve
 
 #: name -> (dtype, trailing shape, fill value for rows not seen this epoch)
 IMAGE_FIELDS: dict[str, tuple[str, tuple[int, ...], float]] = {
@@ -107,8 +111,9 @@ class LossLogWriter:
 
     def _open(self, prefix: str, fields: dict, rows: int) -> None:
         for name, (dtype, shape, fill) in fields.items():
-            arr = np.lib.format.open_memmap(self._tmp / f"{prefix}.{name}.npy", mode="w+",
-                                            dtype=dtype, shape=(rows, *shape))
+            path = self._tmp / f"{prefix}.{name}.npy"
+            arr = np.lib.format.open_memmap(path, mode="w+", dtype=dtype, shape=(rows, *shape))
+            reserve(path)
             arr[...] = fill
             self._arrays[f"{prefix}.{name}"] = arr
 
@@ -125,6 +130,7 @@ class LossLogWriter:
         self._open("object", OBJECT_FIELDS, self.num_objects)
         self._open("unmatched", UNMATCHED_FIELDS, self.unmatched_capacity)
         cov = np.lib.format.open_memmap(self._tmp / "covered.npy", mode="w+", dtype=bool, shape=(self.num_images,))
+        reserve(self._tmp / "covered.npy")
         cov[...] = False
         self._arrays["covered"] = cov
 

@@ -179,7 +179,8 @@ def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path,
     cache = build_image_cache(dataset, rundir / "cache", int(config["data"]["image_size"]),
                               max_pixels=int(config["data"]["max_pixels"]), progress=progress,
                               pixel_stats=bool(config["analysis"]["pixel_descriptors"]),
-                              with_crops=bool(config["crossfit"]["enabled"]))
+                              with_crops=bool(config["crossfit"]["enabled"]),
+                              reduced_decode=bool(config["data"]["reduced_decode"]))
     timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"] - timings["recipe_s"]
     return dataset, cache, config
 

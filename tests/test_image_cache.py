@@ -156,7 +156,9 @@ def test_pixel_descriptors_equal_direct_opencv_calls(tmp_path):
     Image.fromarray(noisy).save(tmp_path / "noisy.png")
     box = (30, 20, 40, 30)
     ds = _dataset(tmp_path, [("square.png", 64, 64), ("noisy.png", 120, 90)], {1: [box]})
-    cache = build_image_cache(ds, tmp_path / "cache", 32, max_pixels=10**8, progress=False, workers=1)
+    # full-resolution descriptors (the view's are checked in test_reduced_decode.py)
+    cache = build_image_cache(ds, tmp_path / "cache", 32, max_pixels=10**8, progress=False, workers=1,
+                              reduced_decode=False)
     # /work/shared/CHECKS.md worked values (OpenCV): Laplacian variance 4191.06, Canny(100, 200) density 0.030273
     assert cache.pixel[0, 0] == pytest.approx(4191.06, rel=1e-5)
     assert cache.pixel[0, 3] == pytest.approx(0.030273, abs=1e-6)

@@ -10,7 +10,8 @@ Files in ``cache_dir``::
 
     images.u8        uint8 [I, S, S, 3] RGB, raw memmap (shape in meta.npz)
     meta.npz         scale float64 [I], usable bool [I], pixel float32 [I, 4] (PIXEL_DESCRIPTOR_NAMES,
-                     NaN where unusable), image_ids int64 [I], image_size int
+                     NaN where unusable), image_ids int64 [I], image_size int, reduction uint8 [I] (JPEG
+                     decode reduction, below; 1 = full resolution or not decoded)
     problems.json    [{index, image_id, file_name, reason, usable, level}]: level "error" = unusable
                      (not trained on), "warning" = usable with a note (e.g. size differs from the file)
     crops.u8         uint8 [A, 64, 64, 3] one crop per annotation at the original resolution, for the
@@ -19,9 +20,21 @@ Files in ``cache_dir``::
                      size and the image files' sizes and times, so a cache is reused only for the same input
 
 Everything is built under temporary names and renamed into place, fingerprint last, so a killed build
-never leaves a cache that looks complete. Pixel descriptors (blur, brightness, contrast, clutter) are
-and object crops are taken from the full-resolution pixels while they are in memory, so each image is read
-once overall.
+never leaves a cache that looks complete. Pixel descriptors (blur, brightness, contrast, clutter) and object
+crops are taken from the decoded pixels while they are in memory, so each image is read once overall.
+
+Reduced decoding (``reduced_decode``): a JPEG is decoded straight from the file at 1/2, 1/4 or 1/8 of its size
+(libjpeg's DCT scaling through Pillow's ``Image.draft``) when the reduction (:func:`draft_reduction`) divides
+both sides, leaves the longer side at least twice ``S`` (the letterbox then still averages 2x2 px or more into
+each view px: :data:`VIEW_OVERSAMPLE`) and leaves every box of the image at least :data:`MIN_CROP_SIDE` px on
+its shorter side (its crop keeps full stored resolution). A 4000x3000 photo with no box under 64 px decodes at
+1000x750 for a 320 px view; an image with one small box keeps full resolution. Box geometry is unchanged (``scale`` refers to the declared size). Pixel
+descriptors are then measured on the training view (the letterboxed image without its padding, boxes
+``* scale``), so they do not depend on which reduction an image got: at full resolution an image decoded whole
+because of one small box would look blurrier and less cluttered than its reduced neighbours (Laplacian
+variance and edge density both grow as an image shrinks), and the causes analysis would read that as a
+property of hard images. Without ``reduced_decode`` every image is decoded whole and measured at full
+resolution.
 """
 
 from __future__ import annotations
@@ -34,14 +47,14 @@ import shutil
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import cv2
 import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 from tqdm import tqdm
 
-from detdiff.crossfit.crops import CROPS_FILE, STORE, crop_bytes, object_crops
+from detdiff.crossfit.crops import CONTEXT, CROPS_FILE, STORE, crop_bytes, object_crops
 from detdiff.data.coco import CocoDataset, UnsafeImagePath, resolve_image_path
 from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
 
@@ -51,6 +64,15 @@ IMAGES_FILE = "images.u8"
 META_FILE = "meta.npz"
 PROBLEMS_FILE = "problems.json"
 FINGERPRINT_FILE = "fingerprint.json"
+#: JPEG decode reductions tried, largest first (libjpeg scales by 1/2, 1/4 and 1/8 while decoding).
+DRAFT_REDUCTIONS = (8, 4, 2)
+#: A reduced image keeps at least this many px per view px on its longer side. At 1-2 the view came out softer
+#: than from a full decode (Laplacian variance 0.6-0.75x, two box filters in a row); at >= 2 it was 0.87-1.0x
+#: (scikit-image's photos enlarged to 4000x3000 and 1920x1080 with sensor noise, views of 320 and 512 px).
+VIEW_OVERSAMPLE = 2
+#: A box keeps a full-resolution crop when its shorter side is at least this many decoded px: a stored crop
+#: covers CONTEXT box sides in STORE px.
+MIN_CROP_SIDE = STORE / CONTEXT
 
 
 class InsufficientSpaceError(OSError):
@@ -137,7 +159,7 @@ def _image_root(dataset: CocoDataset) -> Path:
 
 
 def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pixels: bool,
-                 with_crops: bool) -> dict[str, Any]:
+                 with_crops: bool, reduced_decode: bool) -> dict[str, Any]:
     """What the cache depends on: dataset records, boxes (for clutter), view size, and the files' stat."""
     root = _image_root(dataset).resolve()
     digest = hashlib.sha256()
@@ -153,7 +175,8 @@ def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pi
             pass
     digest.update(stats.tobytes())
     return {"version": CACHE_FORMAT_VERSION, "image_size": int(image_size), "max_pixels": int(max_pixels),
-            "pixel_descriptors": bool(with_pixels), "crops": bool(with_crops), "num_images": int(dataset.num_images),
+            "pixel_descriptors": bool(with_pixels), "crops": bool(with_crops), "reduced_decode": bool(reduced_decode),
+            "num_images": int(dataset.num_images),
             "image_root": str(root), "digest": digest.hexdigest()}
 
 
@@ -192,8 +215,30 @@ class _Refused(Exception):
     """An image that cannot be used; the message is the reason recorded in problems.json."""
 
 
-def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
-    """Read one file into uint8 RGB at full resolution, EXIF orientation applied; raise ``_Refused``."""
+def draft_reduction(width: int, height: int, boxes_xywh: np.ndarray, image_size: int) -> int:
+    """The largest of :data:`DRAFT_REDUCTIONS` that divides both sides of a ``width x height`` image, keeps its
+    longer side at least :data:`VIEW_OVERSAMPLE` x ``image_size`` and every box's shorter side at least
+    :data:`MIN_CROP_SIDE` px; else 1.
+
+    ``boxes_xywh`` are in the image's pixels. Dividing both sides keeps the reduced pixel grid the original's
+    (pixel ``i`` covers original pixels ``r*i .. r*i + r - 1``), so a box maps back exactly by ``* r``.
+    """
+    boxes = np.asarray(boxes_xywh, dtype=np.float64).reshape(-1, 4)
+    smallest = float(boxes[:, 2:].min()) if len(boxes) else np.inf
+    for r in DRAFT_REDUCTIONS:
+        if (width % r == 0 and height % r == 0 and max(width, height) >= VIEW_OVERSAMPLE * image_size * r
+                and smallest >= MIN_CROP_SIDE * r):
+            return r
+    return 1
+
+
+def _decode_full(path: Path, max_pixels: int,
+                 reduce: Callable[[int, int], int] | None = None) -> tuple[np.ndarray, int]:
+    """Read one file into uint8 RGB, EXIF orientation applied; returns (pixels, reduction); raise ``_Refused``.
+
+    ``reduce(width, height) -> r`` (header size, before EXIF rotation) asks for a JPEG decoded at ``1/r`` of
+    its size (``Image.draft``); other formats and ``reduce=None`` decode at full resolution (reduction 1).
+    """
     try:
         size = path.stat().st_size
     except FileNotFoundError:
@@ -210,9 +255,13 @@ def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
                 if w * h > max_pixels:
                     raise _Refused(f"{w}x{h} = {w * h} pixels exceeds data.max_pixels = {max_pixels}; "
                                    f"refused before decoding")
+                reduction = reduce(w, h) if reduce is not None and im.format in ("JPEG", "MPO") else 1
+                if reduction > 1:
+                    drafted = im.draft("RGB", (w // reduction, h // reduction))
+                    reduction = 1 if drafted is None else int(round(w / drafted[1][2]))
                 im.load()
                 im = ImageOps.exif_transpose(im)    # COCO sizes are of the displayed (rotated) image
-                return _to_rgb8(im)
+                return _to_rgb8(im), reduction
     except _Refused:
         raise
     except Image.DecompressionBombError as exc:
@@ -223,11 +272,17 @@ def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
         raise _Refused(f"corrupt or truncated image ({type(exc).__name__}: {exc})") from None
 
 
+def view_extent(declared_w: int, declared_h: int, image_size: int) -> tuple[int, int]:
+    """Width and height of the image inside its ``S x S`` view (the rest is padding)."""
+    scale = image_size / max(declared_w, declared_h)
+    return (min(image_size, max(1, int(round(declared_w * scale)))),
+            min(image_size, max(1, int(round(declared_h * scale)))))
+
+
 def letterbox(image_rgb: np.ndarray, declared_w: int, declared_h: int, image_size: int) -> tuple[np.ndarray, float]:
     """Resize ``image_rgb [h, w, 3]`` to the declared size's view and pad to ``[S, S, 3]``; returns (view, scale)."""
     scale = image_size / max(declared_w, declared_h)
-    new_w = min(image_size, max(1, int(round(declared_w * scale))))
-    new_h = min(image_size, max(1, int(round(declared_h * scale))))
+    new_w, new_h = view_extent(declared_w, declared_h, image_size)
     h, w = image_rgb.shape[:2]
     shrinking = new_w * new_h < w * h
     resized = cv2.resize(image_rgb, (new_w, new_h), interpolation=cv2.INTER_AREA if shrinking else cv2.INTER_LINEAR)
@@ -241,13 +296,14 @@ _WORKER: dict[str, Any] = {}
 
 
 def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool,
-                 crops_path: str | None, num_crops: int) -> None:
+                 crops_path: str | None, num_crops: int, reduced_decode: bool) -> None:
     cv2.setNumThreads(1)
     _WORKER["images"] = np.memmap(images_path, dtype=np.uint8, mode="r+", shape=shape)
     _WORKER["crops"] = (np.memmap(crops_path, dtype=np.uint8, mode="r+", shape=(num_crops, STORE, STORE, 3))
                         if crops_path and num_crops else None)
     _WORKER["max_pixels"] = max_pixels
     _WORKER["with_pixels"] = with_pixels
+    _WORKER["reduced_decode"] = reduced_decode
 
 
 def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, int]) -> dict[str, Any]:
@@ -257,25 +313,38 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, 
     images = _WORKER["images"]
     size = images.shape[1]
     out: dict[str, Any] = {"index": index, "scale": size / max(declared_w, declared_h), "usable": False,
-                           "pixel": np.full(len(PIXEL_DESCRIPTOR_NAMES), np.nan, dtype=np.float32), "notes": []}
+                           "pixel": np.full(len(PIXEL_DESCRIPTOR_NAMES), np.nan, dtype=np.float32), "notes": [],
+                           "reduction": 1}
+
+    def reduce(file_w: int, file_h: int) -> int:
+        if sorted((file_w, file_h)) != sorted((declared_w, declared_h)):
+            return 1                                # size disagrees with the annotation: decode it all
+        return draft_reduction(file_w, file_h, boxes_xywh, size)
+
     try:
         if refusal is not None:
             raise _Refused(refusal)
-        full = _decode_full(Path(path), _WORKER["max_pixels"])
+        full, reduction = _decode_full(Path(path), _WORKER["max_pixels"],
+                                       reduce if _WORKER["reduced_decode"] else None)
     except _Refused as exc:
         images[index] = PAD_VALUE
         out["notes"].append(("error", str(exc)))
         return out
+    out["reduction"] = reduction
     h, w = full.shape[:2]
-    if (w, h) != (declared_w, declared_h):
+    file_w, file_h = w * reduction, h * reduction
+    if (file_w, file_h) != (declared_w, declared_h):
         hint = (" (the declared size is this one turned by 90 degrees: was the EXIF orientation ignored "
-                "when it was annotated?)" if (h, w) == (declared_w, declared_h) else "")
-        out["notes"].append(("warning", f"decoded size {w}x{h} differs from the declared {declared_w}x{declared_h}; "
-                                        f"resized to the declared size{hint}"))
+                "when it was annotated?)" if (file_h, file_w) == (declared_w, declared_h) else "")
+        out["notes"].append(("warning", f"decoded size {file_w}x{file_h} differs from the declared "
+                                        f"{declared_w}x{declared_h}; resized to the declared size{hint}"))
     try:
         view, scale = letterbox(full, declared_w, declared_h, size)
         boxes_here = np.asarray(boxes_xywh, dtype=np.float64) * np.array([w / declared_w, h / declared_h] * 2)
-        if _WORKER["with_pixels"]:
+        if _WORKER["with_pixels"] and _WORKER["reduced_decode"]:     # on the view: the same whatever the reduction
+            new_w, new_h = view_extent(declared_w, declared_h, size)
+            out["pixel"] = pixel_descriptors(view[:new_h, :new_w], np.asarray(boxes_xywh, dtype=np.float64) * scale)
+        elif _WORKER["with_pixels"]:
             out["pixel"] = pixel_descriptors(full, boxes_here)
         if _WORKER["crops"] is not None and len(boxes_here):
             _WORKER["crops"][first_ann:first_ann + len(boxes_here)] = object_crops(full, boxes_here)
@@ -312,7 +381,7 @@ def _tasks(dataset: CocoDataset):
 
 def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
                       progress: bool = True, workers: int = 2, pixel_stats: bool = True,
-                      with_crops: bool = False) -> ImageCache:
+                      with_crops: bool = False, reduced_decode: bool = True) -> ImageCache:
     """Decode every image of ``dataset`` once into ``cache_dir`` (see module docstring) and open it.
 
     A complete cache for the same dataset, files and view size is reused as is. Images that cannot be
@@ -320,9 +389,10 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     in ``problems.json`` and the build goes on. ``workers`` > 1 decodes in a process pool of that size.
     ``pixel_stats`` = False skips the descriptors (``analysis.pixel_descriptors`` off): ``pixel`` is NaN.
     ``with_crops`` also stores one crop per annotation (``crops.u8``) for the cross-fitted crop models.
+    ``reduced_decode`` decodes large JPEGs at reduced size where views and crops allow (module docstring).
     """
     cache_dir = Path(cache_dir)
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
     fp_path = cache_dir / FINGERPRINT_FILE
     if fp_path.is_file():
         try:
@@ -357,14 +427,16 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     scale = np.full(num, np.nan, dtype=np.float64)
     usable = np.zeros(num, dtype=bool)
     pixel = np.full((num, len(PIXEL_DESCRIPTOR_NAMES)), np.nan, dtype=np.float32)
+    reduction = np.ones(num, dtype=np.uint8)
     problems: list[dict[str, Any]] = []
     init_args = (str(images_tmp), shape, int(max_pixels), bool(pixel_stats),
-                 None if crops_tmp is None else str(crops_tmp), num_crops)
+                 None if crops_tmp is None else str(crops_tmp), num_crops, bool(reduced_decode))
     bar = tqdm(total=num, desc="decode images", unit="img", disable=not progress, leave=False)
 
     def collect(result: dict[str, Any]) -> None:
         i = result["index"]
-        scale[i], usable[i], pixel[i] = result["scale"], result["usable"], result["pixel"]
+        scale[i], usable[i], pixel[i], reduction[i] = (result["scale"], result["usable"], result["pixel"],
+                                                       result["reduction"])
         for level, reason in result["notes"]:
             problems.append({"index": int(i), "image_id": int(dataset.image_ids[i]),
                              "file_name": dataset.file_names[i], "reason": reason,
@@ -402,7 +474,7 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     meta_tmp = cache_dir / f"meta{tmp_tag}.npz"
     with open(meta_tmp, "wb") as fh:
         np.savez(fh, scale=scale, usable=usable, pixel=pixel, image_ids=dataset.image_ids,
-                 image_size=np.int64(image_size))
+                 image_size=np.int64(image_size), reduction=reduction)
     problems_tmp = cache_dir / (PROBLEMS_FILE + tmp_tag)
     problems_tmp.write_text(json.dumps(problems, indent=1))
     os.replace(images_tmp, cache_dir / IMAGES_FILE)

@@ -379,6 +379,52 @@ def _tasks(dataset: CocoDataset):
         yield (i, path, refusal, int(dataset.widths[i]), int(dataset.heights[i]), dataset.boxes[rows], rows.start)
 
 
+def current_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
+                  pixel_stats: bool = True, with_crops: bool = False, reduced_decode: bool = True) -> ImageCache | None:
+    """The complete cache in ``cache_dir`` when it was built from this dataset, these files and settings, else None."""
+    cache_dir = Path(cache_dir)
+    fp_path = cache_dir / FINGERPRINT_FILE
+    if not fp_path.is_file():
+        return None
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
+    try:
+        if json.loads(fp_path.read_text()) == fingerprint:
+            return ImageCache.open(cache_dir)
+    except (OSError, ValueError, KeyError, FileNotFoundError):
+        pass
+    return None
+
+
+def _clear_for_build(cache_dir: Path, needed_bytes: int) -> None:
+    """Check that ``needed_bytes`` fit (counting what an outdated cache frees), then remove the outdated cache,
+    fingerprint first (from then on no complete cache is claimed)."""
+    outdated = [cache_dir / IMAGES_FILE, cache_dir / CROPS_FILE]
+    reclaimable = sum(f.stat().st_size for f in outdated if f.is_file())
+    check_folder_room(cache_dir, max(0, needed_bytes - reclaimable) + 1_000_000, "the image cache")
+    (cache_dir / FINGERPRINT_FILE).unlink(missing_ok=True)
+    for stale in outdated:
+        stale.unlink(missing_ok=True)                     # an outdated cache only takes room
+
+
+def _publish(cache_dir: Path, tmp_tag: str, images_tmp: Path, crops_tmp: Path | None, meta: dict[str, Any],
+             problems: list[dict[str, Any]], fingerprint: dict[str, Any]) -> ImageCache:
+    """Write meta and problems under temporary names, rename everything into place, the fingerprint last."""
+    meta_tmp = cache_dir / f"meta{tmp_tag}.npz"
+    with open(meta_tmp, "wb") as fh:
+        np.savez(fh, **meta)
+    problems_tmp = cache_dir / (PROBLEMS_FILE + tmp_tag)
+    problems_tmp.write_text(json.dumps(problems, indent=1))
+    os.replace(images_tmp, cache_dir / IMAGES_FILE)
+    if crops_tmp is not None:
+        os.replace(crops_tmp, cache_dir / CROPS_FILE)
+    os.replace(meta_tmp, cache_dir / META_FILE)
+    os.replace(problems_tmp, cache_dir / PROBLEMS_FILE)
+    fp_tmp = cache_dir / (FINGERPRINT_FILE + tmp_tag)
+    fp_tmp.write_text(json.dumps(fingerprint, indent=1))
+    os.replace(fp_tmp, cache_dir / FINGERPRINT_FILE)
+    return ImageCache.open(cache_dir)
+
+
 def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
                       progress: bool = True, workers: int = 2, pixel_stats: bool = True,
                       with_crops: bool = False, reduced_decode: bool = True) -> ImageCache:
@@ -392,22 +438,13 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     ``reduced_decode`` decodes large JPEGs at reduced size where views and crops allow (module docstring).
     """
     cache_dir = Path(cache_dir)
+    reusable = current_cache(dataset, cache_dir, image_size, max_pixels=max_pixels, pixel_stats=pixel_stats,
+                             with_crops=with_crops, reduced_decode=reduced_decode)
+    if reusable is not None:
+        return reusable
     fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
-    fp_path = cache_dir / FINGERPRINT_FILE
-    if fp_path.is_file():
-        try:
-            if json.loads(fp_path.read_text()) == fingerprint:
-                return ImageCache.open(cache_dir)
-        except (OSError, ValueError, KeyError, FileNotFoundError):
-            pass
-    outdated = [cache_dir / IMAGES_FILE, cache_dir / CROPS_FILE]
-    reclaimable = sum(f.stat().st_size for f in outdated if f.is_file())
     num_crops = dataset.num_annotations if with_crops else 0
-    needed = cache_bytes(dataset.num_images, image_size) + crop_bytes(num_crops)
-    check_folder_room(cache_dir, max(0, needed - reclaimable) + 1_000_000, "the image cache")
-    fp_path.unlink(missing_ok=True)                       # from here on, no complete cache is claimed
-    for stale in outdated:
-        stale.unlink(missing_ok=True)                     # an outdated cache only takes room
+    _clear_for_build(cache_dir, cache_bytes(dataset.num_images, image_size) + crop_bytes(num_crops))
 
     num = dataset.num_images
     shape = (num, image_size, image_size, 3)
@@ -471,18 +508,6 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
         bar.close()
 
     problems.sort(key=lambda p: (p["index"], p["level"]))
-    meta_tmp = cache_dir / f"meta{tmp_tag}.npz"
-    with open(meta_tmp, "wb") as fh:
-        np.savez(fh, scale=scale, usable=usable, pixel=pixel, image_ids=dataset.image_ids,
-                 image_size=np.int64(image_size), reduction=reduction)
-    problems_tmp = cache_dir / (PROBLEMS_FILE + tmp_tag)
-    problems_tmp.write_text(json.dumps(problems, indent=1))
-    os.replace(images_tmp, cache_dir / IMAGES_FILE)
-    if crops_tmp is not None:
-        os.replace(crops_tmp, cache_dir / CROPS_FILE)
-    os.replace(meta_tmp, cache_dir / META_FILE)
-    os.replace(problems_tmp, cache_dir / PROBLEMS_FILE)
-    fp_tmp = cache_dir / (FINGERPRINT_FILE + tmp_tag)
-    fp_tmp.write_text(json.dumps(fingerprint, indent=1))
-    os.replace(fp_tmp, fp_path)
-    return ImageCache.open(cache_dir)
+    meta = {"scale": scale, "usable": usable, "pixel": pixel, "image_ids": dataset.image_ids,
+            "image_size": np.int64(image_size), "reduction": reduction}
+    return _publish(cache_dir, tmp_tag, images_tmp, crops_tmp, meta, problems, fingerprint)

@@ -21,15 +21,19 @@ TABLES = ("images", "objects", "suspects", "classes", "causes")
 
 @dataclass
 class AuditRun:
-    """A finished run folder; tables are read from its CSV files on first use."""
+    """A finished run folder; tables are read on first use from its CSV files, or from their Parquet copies where
+    pyarrow is installed (the same table, read faster). Either way text columns are strings (empty: ``""``) and
+    ``usable`` / ``never_learned`` / ``probe`` / ``significant`` are booleans."""
 
     rundir: Path
 
     def _table(self, name: str) -> pd.DataFrame:
+        from detdiff.report.run_folder import parquet_copy, read_table
+
         path = self.rundir / f"{name}.csv"
-        if not path.exists():
+        if not path.exists() and parquet_copy(path) is None:
             raise FileNotFoundError(f"{path}: table not written yet (run the audit or 'detdiff analyze')")
-        return pd.read_csv(path)
+        return read_table(path)
 
     @cached_property
     def images(self) -> pd.DataFrame:

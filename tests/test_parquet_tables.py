@@ -59,6 +59,13 @@ def test_parquet_copy_reads_back_as_the_csv_table(tmp_path):
     from_csv = open_run(tmp_path)
     pd.testing.assert_frame_equal(from_csv.objects, objects, check_exact=True)
     pd.testing.assert_frame_equal(from_csv.images, images, check_exact=True)
+    some = ["annotation_id", "why"]
+    pd.testing.assert_frame_equal(from_csv.table("objects", some), objects[some], check_exact=True)
+    for name in ("images", "objects"):
+        os.utime(tmp_path / f"{name}.csv", ns=(1, 1))                # the copy is the newer again
+    pd.testing.assert_frame_equal(open_run(tmp_path).table("objects", some), objects[some], check_exact=True)
+    with pytest.raises(ValueError, match="unknown table"):
+        from_csv.table("object")
 
 
 def test_without_pyarrow_a_stale_copy_is_removed(tmp_path, monkeypatch):

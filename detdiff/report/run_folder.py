@@ -51,9 +51,10 @@ def parquet_copy(path: Path) -> Path | None:
     return parquet if fresh and importlib.util.find_spec("pyarrow") is not None else None
 
 
-def read_table(path: Path, columns: tuple[str, ...] = ()) -> pd.DataFrame:
+def read_table(path: Path, columns: tuple[str, ...] = (), *, only: list[str] | None = None) -> pd.DataFrame:
     """Read one analysis CSV (from its Parquet copy when :func:`parquet_copy` finds one: the same table, read
-    faster); a missing file gives an empty table with ``columns``.
+    faster); a missing file gives an empty table with ``columns``. ``only``: read just these columns (from a
+    Parquet copy only they are read at all).
 
     Only empty cells are missing values (``keep_default_na=False``), so text such as ``NA`` survives, and the
     text columns are always strings (empty -> ``""``). ``significant`` / ``usable`` become real booleans.
@@ -65,10 +66,10 @@ def read_table(path: Path, columns: tuple[str, ...] = ()) -> pd.DataFrame:
         if parquet is not None:     # without pandas' metadata, columns come back with the types a CSV gives
             import pyarrow.parquet
 
-            table = pyarrow.parquet.read_table(parquet).to_pandas(ignore_metadata=True)
+            table = pyarrow.parquet.read_table(parquet, columns=only).to_pandas(ignore_metadata=True)
         else:
             header = pd.read_csv(path, nrows=0).columns
-            table = pd.read_csv(path, keep_default_na=False, na_values=[""],
+            table = pd.read_csv(path, keep_default_na=False, na_values=[""], usecols=only,
                                 dtype={c: str for c in _TEXT_COLUMNS if c in header})
     except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError, OSError) as exc:
         raise ValueError(f"{parquet or path}: cannot read table: {exc}") from exc

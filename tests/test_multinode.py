@@ -42,15 +42,17 @@ def _assert_same_cache(a: Path, b: Path) -> None:
         assert all(np.array_equal(x[k], y[k], equal_nan=True) for k in x.files)
 
 
-def test_shard_bounds_are_contiguous_and_balanced_on_pixels():
+def test_shard_bounds_are_contiguous_and_balanced_on_decoded_pixels():
     ds = build_dataset({"images": [{"id": i + 1, "file_name": f"{i}.jpg", "width": w, "height": 1000}
                                    for i, w in enumerate([4000] * 4 + [640] * 20)],
                         "annotations": [], "categories": [{"id": 1, "name": "a"}]})
-    bounds = shard_bounds(ds, 2)
+    bounds = shard_bounds(ds, 2, 64, reduced_decode=False)
     assert bounds[0] == 0 and bounds[-1] == 24 and np.all(np.diff(bounds) >= 0)
     assert bounds[1] == 5        # work 4 x 4.3 + 0.94 = 18.1 of 36.0 Mpx (pixels + 0.3 Mpx per image)
-    assert shard_bounds(ds, 1).tolist() == [0, 24]
-    assert np.all(np.diff(shard_bounds(ds.subset_images(np.arange(2)), 5)) >= 0)   # more ranks than images
+    # decoded at 1/8 and 1/4: 4 x 0.36 + 8 x 0.34 = 4.17 of 8.25 M decoded px
+    assert shard_bounds(ds, 2, 64).tolist() == [0, 12, 24]
+    assert shard_bounds(ds, 1, 64).tolist() == [0, 24]
+    assert np.all(np.diff(shard_bounds(ds.subset_images(np.arange(2)), 5, 64)) >= 0)   # more ranks than images
 
 
 def test_shards_joined_equal_the_cache_of_one_process(tmp_path):

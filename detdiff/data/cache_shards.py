@@ -26,19 +26,32 @@ import numpy as np
 from detdiff.crossfit.crops import CROPS_FILE, crop_bytes
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import (FINGERPRINT_FILE, IMAGES_FILE, META_FILE, PROBLEMS_FILE, ImageCache,
-                                      _clear_for_build, _fingerprint, _publish, build_image_cache, cache_bytes)
+                                      _clear_for_build, _fingerprint, _publish, build_image_cache, cache_bytes,
+                                      draft_reductions)
 
 SHARDS_DIR = "shards"
-#: Decode work of one image besides its pixels (descriptors, crops, writing), in pixels: shares are balanced on
-#: declared pixels plus this.
+#: Decode work of one image besides decoding its pixels (crops, view, descriptors, writing), in decoded pixels.
 FIXED_PIXELS = 300_000
 COPY_CHUNK = 64 << 20
 
 
-def shard_bounds(dataset: CocoDataset, world_size: int) -> np.ndarray:
+def decode_work(dataset: CocoDataset, image_size: int, reduced_decode: bool) -> np.ndarray:
+    """Estimated decode work per image (float64 ``[I]``): the pixels decoded (fewer for a JPEG that will be decoded
+    reduced, :func:`draft_reductions`, judged from its name) plus :data:`FIXED_PIXELS`."""
+    pixels = dataset.widths.astype(np.float64) * dataset.heights
+    if reduced_decode:
+        smallest = np.full(dataset.num_images, np.inf)
+        np.minimum.at(smallest, dataset.ann_image_index, dataset.boxes[:, 2:].min(axis=1))
+        jpeg = np.array([name.lower().endswith((".jpg", ".jpeg")) for name in dataset.file_names], dtype=bool)
+        reduction = np.where(jpeg, draft_reductions(dataset.widths, dataset.heights, smallest, image_size), 1)
+        pixels = pixels / reduction.astype(np.float64) ** 2
+    return pixels + FIXED_PIXELS
+
+
+def shard_bounds(dataset: CocoDataset, world_size: int, image_size: int, reduced_decode: bool = True) -> np.ndarray:
     """``int64 [world_size + 1]``: rank ``k`` decodes image rows ``bounds[k]:bounds[k + 1]``, contiguous shares of
-    about equal decode work (declared pixels plus :data:`FIXED_PIXELS` per image)."""
-    work = np.cumsum(dataset.widths.astype(np.float64) * dataset.heights + FIXED_PIXELS)
+    about equal :func:`decode_work`."""
+    work = np.cumsum(decode_work(dataset, image_size, reduced_decode))
     total = work[-1] if len(work) else 0.0
     cuts = np.searchsorted(work, total * np.arange(1, world_size) / world_size, side="left") + 1
     return np.concatenate([[0], np.minimum(cuts, dataset.num_images), [dataset.num_images]]).astype(np.int64)
@@ -61,7 +74,7 @@ def build_cache_shard(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                       **options: Any) -> Path:
     """Decode rank ``rank``'s share of ``dataset`` into its shard folder (reused when complete), written through to
     disk before returning; ``options`` are those of :func:`build_image_cache`."""
-    bounds = shard_bounds(dataset, world_size)
+    bounds = shard_bounds(dataset, world_size, image_size, bool(options.get("reduced_decode", True)))
     folder = shard_dir(cache_dir, rank, world_size)
     part = dataset.subset_images(np.arange(bounds[rank], bounds[rank + 1]))
     build_image_cache(part, folder, image_size, **options)
@@ -99,7 +112,7 @@ def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: 
     (same fingerprint, so a later single-process run reuses it).
     """
     cache_dir = Path(cache_dir)
-    bounds = shard_bounds(dataset, world_size)
+    bounds = shard_bounds(dataset, world_size, image_size, reduced_decode)
     folders = [shard_dir(cache_dir, k, world_size) for k in range(world_size)]
     shards = [ImageCache.open(f) for f in folders]
     for k, shard in enumerate(shards):

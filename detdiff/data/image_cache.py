@@ -208,28 +208,37 @@ def _to_rgb8(im: Image.Image) -> np.ndarray:
         alpha = rgba[:, :, 3:4] / 255.0
         rgb = rgba[:, :, :3] * alpha + PAD_VALUE * (1.0 - alpha)
         return np.clip(np.rint(rgb), 0, 255).astype(np.uint8)
-    return np.asarray(im.convert("RGB"))
+    return np.asarray(im if mode == "RGB" else im.convert("RGB"))      # convert("RGB") of RGB copies
 
 
 class _Refused(Exception):
     """An image that cannot be used; the message is the reason recorded in problems.json."""
 
 
-def draft_reduction(width: int, height: int, boxes_xywh: np.ndarray, image_size: int) -> int:
-    """The largest of :data:`DRAFT_REDUCTIONS` that divides both sides of a ``width x height`` image, keeps its
-    longer side at least :data:`VIEW_OVERSAMPLE` x ``image_size`` and every box's shorter side at least
-    :data:`MIN_CROP_SIDE` px; else 1.
+def draft_reductions(widths: np.ndarray, heights: np.ndarray, smallest_box_sides: np.ndarray,
+                     image_size: int) -> np.ndarray:
+    """Per image, the largest of :data:`DRAFT_REDUCTIONS` that divides both sides, keeps the longer side at least
+    :data:`VIEW_OVERSAMPLE` x ``image_size`` and the shorter side of the image's smallest box (``inf`` without
+    boxes) at least :data:`MIN_CROP_SIDE` px; else 1 (int64 ``[I]``).
 
-    ``boxes_xywh`` are in the image's pixels. Dividing both sides keeps the reduced pixel grid the original's
-    (pixel ``i`` covers original pixels ``r*i .. r*i + r - 1``), so a box maps back exactly by ``* r``.
+    Dividing both sides keeps the reduced pixel grid the original's (pixel ``i`` covers original pixels
+    ``r*i .. r*i + r - 1``), so a box maps back exactly by ``* r``.
     """
+    w, h = np.asarray(widths, dtype=np.int64), np.asarray(heights, dtype=np.int64)
+    smallest = np.asarray(smallest_box_sides, dtype=np.float64)
+    out = np.ones(len(w), dtype=np.int64)
+    for r in sorted(DRAFT_REDUCTIONS):              # each allowed r also allows every smaller one
+        ok = ((w % r == 0) & (h % r == 0) & (np.maximum(w, h) >= VIEW_OVERSAMPLE * image_size * r)
+              & (smallest >= MIN_CROP_SIDE * r))
+        out[ok] = r
+    return out
+
+
+def draft_reduction(width: int, height: int, boxes_xywh: np.ndarray, image_size: int) -> int:
+    """:func:`draft_reductions` of one ``width x height`` image with ``boxes_xywh`` in its pixels."""
     boxes = np.asarray(boxes_xywh, dtype=np.float64).reshape(-1, 4)
     smallest = float(boxes[:, 2:].min()) if len(boxes) else np.inf
-    for r in DRAFT_REDUCTIONS:
-        if (width % r == 0 and height % r == 0 and max(width, height) >= VIEW_OVERSAMPLE * image_size * r
-                and smallest >= MIN_CROP_SIDE * r):
-            return r
-    return 1
+    return int(draft_reductions(np.array([width]), np.array([height]), np.array([smallest]), image_size)[0])
 
 
 def _decode_full(path: Path, max_pixels: int,
@@ -260,7 +269,7 @@ def _decode_full(path: Path, max_pixels: int,
                     drafted = im.draft("RGB", (w // reduction, h // reduction))
                     reduction = 1 if drafted is None else int(round(w / drafted[1][2]))
                 im.load()
-                im = ImageOps.exif_transpose(im)    # COCO sizes are of the displayed (rotated) image
+                ImageOps.exif_transpose(im, in_place=True)    # COCO sizes are of the displayed image
                 return _to_rgb8(im), reduction
     except _Refused:
         raise

@@ -306,7 +306,8 @@ _WORKER: dict[str, Any] = {}
 
 def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool,
                  crops_path: str | None, num_crops: int, reduced_decode: bool) -> None:
-    cv2.setNumThreads(1)
+    if cv2.getNumThreads() != 1:     # in a forked worker the parent already made it 1 (see build_image_cache)
+        cv2.setNumThreads(1)
     _WORKER["images"] = np.memmap(images_path, dtype=np.uint8, mode="r+", shape=shape)
     _WORKER["crops"] = (np.memmap(crops_path, dtype=np.uint8, mode="r+", shape=(num_crops, STORE, STORE, 3))
                         if crops_path and num_crops else None)
@@ -505,9 +506,16 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                 _WORKER.clear()
                 _WORKER.update(saved)
         else:
-            with _pool_context().Pool(workers, _init_worker, init_args) as pool:
-                for result in pool.imap_unordered(_decode_task, _tasks(dataset), chunksize=8):
-                    collect(result)
+            # OpenCV's thread pool must be stopped before the fork: a forked worker that reconfigures the pool
+            # it inherited from a parent that used it waits forever in pthread_cond_destroy
+            opencv_threads = cv2.getNumThreads()
+            cv2.setNumThreads(1)
+            try:
+                with _pool_context().Pool(workers, _init_worker, init_args) as pool:
+                    for result in pool.imap_unordered(_decode_task, _tasks(dataset), chunksize=8):
+                        collect(result)
+            finally:
+                cv2.setNumThreads(opencv_threads)
     except BaseException:
         images_tmp.unlink(missing_ok=True)
         if crops_tmp is not None:

@@ -21,39 +21,47 @@ TABLES = ("images", "objects", "suspects", "classes", "causes")
 
 @dataclass
 class AuditRun:
-    """A finished run folder; tables are read from its CSV files on first use."""
+    """A finished run folder; tables are read on first use from its CSV files, or from their Parquet copies where
+    pyarrow is installed (the same table, read faster). Either way text columns are strings (empty: ``""``) and
+    ``usable`` / ``never_learned`` / ``probe`` / ``significant`` are booleans."""
 
     rundir: Path
 
-    def _table(self, name: str) -> pd.DataFrame:
+    def table(self, name: str, columns: list[str] | None = None) -> pd.DataFrame:
+        """One of :data:`TABLES`, or just some of its ``columns``: from a Parquet copy only those are read (two
+        columns of an 860k-row objects table: about 50x faster than the whole CSV)."""
+        from detdiff.report.run_folder import parquet_copy, read_table
+
+        if name not in TABLES:
+            raise ValueError(f"unknown table {name!r}; one of {', '.join(TABLES)}")
         path = self.rundir / f"{name}.csv"
-        if not path.exists():
+        if not path.exists() and parquet_copy(path) is None:
             raise FileNotFoundError(f"{path}: table not written yet (run the audit or 'detdiff analyze')")
-        return pd.read_csv(path)
+        return read_table(path, only=columns)
 
     @cached_property
     def images(self) -> pd.DataFrame:
         """One row per image: scores per stream (higher = harder), percentiles, descriptors, why tags."""
-        return self._table("images")
+        return self.table("images")
 
     @cached_property
     def objects(self) -> pd.DataFrame:
         """One row per annotation: scores, learning dynamics, descriptors, why tags."""
-        return self._table("objects")
+        return self.table("objects")
 
     @cached_property
     def suspects(self) -> pd.DataFrame:
         """Suspected label errors (kind, ids, box, suggested fix, score, evidence)."""
-        return self._table("suspects")
+        return self.table("suspects")
 
     @cached_property
     def classes(self) -> pd.DataFrame:
-        return self._table("classes")
+        return self.table("classes")
 
     @cached_property
     def causes(self) -> pd.DataFrame:
         """Effect of each descriptor on each stream (Spearman, lifts) with BH-corrected q-values."""
-        return self._table("causes")
+        return self.table("causes")
 
     @cached_property
     def self_check(self) -> dict[str, Any]:

@@ -4,9 +4,11 @@ Every writer of a run folder writes a temporary name and renames it into place, 
 by a full disk leaves only such names behind (never a half-written file under a final name). An audit
 (fresh or ``--resume``) removes them before it starts and says how much space that gave back. Only names in
 :data:`TEMP_NAMES` are touched, each in the one folder where its writer puts it; a name that carries a
-process id is left alone while that process is alive (another detdiff writing there now). The resumable
-state of an interrupted image-cache build (``cache/*.partial``, ``cache/decode-progress.npz``) is not a
-temporary file: :func:`detdiff.data.image_cache.build_image_cache` goes on from it or removes it.
+process id is left alone while that process is alive (another detdiff writing there now). A folder given as a
+glob pattern (``cache/shards/*``: the image-cache shards of a torchrun audit) stands for every folder it matches.
+The resumable state of an interrupted image-cache build (``cache/*.partial``, ``cache/decode-progress.npz``, the
+same in a shard folder) is not a temporary file: :func:`detdiff.data.image_cache.build_image_cache` goes on from
+it or removes it.
 """
 
 from __future__ import annotations
@@ -20,6 +22,8 @@ from pathlib import Path
 from detdiff.stages import size_text
 
 _PID = r"(?P<pid>\d+)"
+#: The shard folders of a torchrun image cache (detdiff.data.cache_shards: ``cache/shards/<k>-of-<n>/``).
+SHARD_FOLDERS = "cache/shards/*-of-*"
 
 
 @dataclass(frozen=True)
@@ -40,12 +44,15 @@ TEMP_NAMES: tuple[TempName, ...] = (
     TempName("", rf"[\w.-]+\.(?:json|yaml)\.tmp-{_PID}", "detdiff/atomic.py"),
     TempName("", rf"checkpoint\.pt\.tmp-{_PID}", "detdiff/train/checkpoint.py"),
     TempName("", rf"object_features\.npy\.tmp-{_PID}", "detdiff/train/evaluate.py"),
-    TempName("", r"[\w.-]+\.(?:csv|json)\.tmp", "detdiff/analysis/tables.py"),
+    TempName("", r"[\w.-]+\.(?:csv|json|parquet)\.tmp", "detdiff/analysis/tables.py"),
     TempName("", r"dataset\.npz\.tmp\.npz", "detdiff/data/coco.py"),
     TempName("cache", rf"\.write-probe-{_PID}", "detdiff/data/image_cache.py"),
-    TempName("cache", rf"(?:images|crops)\.u8\.tmp-{_PID}", "detdiff/data/image_cache.py"),
+    TempName("cache", rf"(?:images|crops)\.u8\.tmp-{_PID}", "detdiff/data/cache_shards.py"),
     TempName("cache", rf"(?:meta|decode-progress)\.tmp-{_PID}\.npz", "detdiff/data/image_cache.py"),
     TempName("cache", rf"(?:problems|fingerprint)\.json\.tmp-{_PID}", "detdiff/atomic.py"),
+    TempName(SHARD_FOLDERS, rf"\.write-probe-{_PID}", "detdiff/data/image_cache.py"),
+    TempName(SHARD_FOLDERS, rf"(?:meta|decode-progress)\.tmp-{_PID}\.npz", "detdiff/data/image_cache.py"),
+    TempName(SHARD_FOLDERS, rf"(?:problems|fingerprint)\.json\.tmp-{_PID}", "detdiff/atomic.py"),
     TempName("log", rf"epoch_\d{{4}}(?:\.rank\d+)?\.tmp-{_PID}", "detdiff/train/loss_log.py"),
     TempName("log", r"epoch_\d{4}\.rank\d+", "detdiff/train/loss_log.py"),
     TempName("crossfit", rf"(?:fold_\d+|predictions)\.tmp-{_PID}\.npz", "detdiff/crossfit/folds.py"),
@@ -81,23 +88,29 @@ def _size(path: Path) -> int:
     return total
 
 
+def _folders(rundir: Path, folder: str) -> list[Path]:
+    """The folders ``folder`` (a path under ``rundir``, or a glob pattern of such paths) names that exist."""
+    if any(c in folder for c in "*?["):
+        return sorted(p for p in rundir.glob(folder) if p.is_dir() and not p.is_symlink())
+    where = rundir / folder if folder else rundir
+    return [where] if where.is_dir() else []
+
+
 def find_leftovers(rundir: str | Path) -> list[Path]:
     """Temporary files and folders in ``rundir`` left by runs that are no longer running, sorted."""
     rundir = Path(rundir)
     found = []
     for folder in sorted({t.folder for t in TEMP_NAMES}):
-        where = rundir / folder if folder else rundir
-        if not where.is_dir():
-            continue
         names = [t for t in TEMP_NAMES if t.folder == folder]
-        for path in where.iterdir():
-            match = next((m for t in names if (m := t.matches(path.name))), None)
-            if match is None or path.is_symlink():
-                continue
-            pid = match.groupdict().get("pid")
-            if pid is not None and _alive(int(pid)):
-                continue
-            found.append(path)
+        for where in _folders(rundir, folder):
+            for path in where.iterdir():
+                match = next((m for t in names if (m := t.matches(path.name))), None)
+                if match is None or path.is_symlink():
+                    continue
+                pid = match.groupdict().get("pid")
+                if pid is not None and _alive(int(pid)):
+                    continue
+                found.append(path)
     return sorted(found)
 
 

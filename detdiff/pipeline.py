@@ -184,9 +184,7 @@ def _saved_recipe(rundir: Path, config: dict):
 
 def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path, config: dict, resume: bool,
                   progress: bool, timings: dict[str, float]):
-    """Main process only: folder, lint + ingest, recipe and config, image cache (each written to ``rundir``)."""
-    from detdiff.crossfit.crops import crop_bytes
-    from detdiff.data.image_cache import build_image_cache, cache_bytes
+    """Main process only: folder, lint + ingest, recipe and config (each written to ``rundir``)."""
     from detdiff.recipe import fit_recipe, format_recipe
 
     t0 = time.perf_counter()
@@ -211,14 +209,59 @@ def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path,
         print(format_recipe(recipe), flush=True)
         save_config(config, rundir / "config.yaml")
     timings["recipe_s"] = time.perf_counter() - t0 - timings["check_s"]
-    size, with_crops = int(config["data"]["image_size"]), bool(config["crossfit"]["enabled"])
-    needed = cache_bytes(dataset.num_images, size) + (crop_bytes(dataset.num_annotations) if with_crops else 0)
+    return dataset, config
+
+
+def _build_cache(dataset: CocoDataset, rundir: Path, config: dict, dist, progress: bool):
+    """The image cache (stage ``decode``): built by this process, or under torchrun by every rank, one shard each,
+    which the main rank joins (``detdiff.data.cache_shards``: the run folder must be on a filesystem every machine
+    shares). Either way through the resumable :func:`detdiff.data.image_cache.build_image_cache`. A failure on any
+    rank stops every rank with the same error."""
+    from detdiff.crossfit.crops import crop_bytes
+    from detdiff.data.image_cache import build_image_cache, cache_bytes
+
+    size, cache_dir = int(config["data"]["image_size"]), rundir / "cache"
+    options = {"max_pixels": int(config["data"]["max_pixels"]),
+               "pixel_stats": bool(config["analysis"]["pixel_descriptors"]),
+               "with_crops": bool(config["crossfit"]["enabled"]),
+               "reduced_decode": bool(config["data"]["reduced_decode"])}
+    needed = (cache_bytes(dataset.num_images, size)
+              + (crop_bytes(dataset.num_annotations) if options["with_crops"] else 0))
     with stage("decode", rundir, "cache", needed):
-        cache = build_image_cache(dataset, rundir / "cache", size, max_pixels=int(config["data"]["max_pixels"]),
-                                  progress=progress, pixel_stats=bool(config["analysis"]["pixel_descriptors"]),
-                                  with_crops=with_crops)
-    timings["cache_s"] = time.perf_counter() - t0 - timings["check_s"] - timings["recipe_s"]
-    return dataset, cache, config
+        if not dist.distributed:
+            return build_image_cache(dataset, cache_dir, size, progress=progress, **options)
+        return _build_cache_shards(dataset, cache_dir, size, options, dist, progress)
+
+
+def _build_cache_shards(dataset: CocoDataset, cache_dir: Path, size: int, options: dict, dist, progress: bool):
+    """Under torchrun: each rank decodes its shard, the main rank joins them (see :func:`_build_cache`)."""
+    from detdiff.data.cache_shards import build_cache_shard, merge_cache_shards
+    from detdiff.data.image_cache import ImageCache, current_cache
+    from detdiff.train.distributed import all_gather_object, broadcast_object
+    from detdiff.train.resources import available_cores
+
+    if broadcast_object(dist.is_main and current_cache(dataset, cache_dir, size, **options) is not None, dist):
+        return ImageCache.open(cache_dir)
+    workers = max(1, available_cores() // int(os.environ.get("LOCAL_WORLD_SIZE", "1")))
+    steps = (("decoding its share of the image cache",
+              lambda: build_cache_shard(dataset, cache_dir, size, dist.rank, dist.world_size, workers=workers,
+                                        progress=progress and dist.is_main, **options)),
+             ("joining the image cache shards",
+              lambda: merge_cache_shards(dataset, cache_dir, size, dist.world_size, **options) if dist.is_main
+              else None))
+    for what, step in steps:
+        failure = None
+        try:
+            step()
+        except BaseException as exc:        # re-raised below, after every rank has heard of it
+            failure = exc
+        messages = all_gather_object(None if failure is None else f"{type(failure).__name__}: {failure}", dist)
+        if failure is not None:
+            raise failure
+        failed = [f"rank {k} ({m})" for k, m in enumerate(messages) if m is not None]
+        if failed:
+            raise RunFolderError(f"{what} failed on {', '.join(failed)}")
+    return ImageCache.open(cache_dir)
 
 
 def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Path, *,
@@ -227,13 +270,12 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
               thumbnails: bool | None = None) -> AuditResult:
     """Run the whole audit into ``rundir`` and return where the results are.
 
-    With ``torchrun`` every process calls this; only the main process lints, builds the cache,
-    evaluates, analyses and reports, the others train their shard. A failure on the main process
-    before training is passed to the others, so no process waits forever.
+    With ``torchrun`` every process calls this; only the main process lints, evaluates, analyses and reports;
+    every process decodes its share of the image cache and trains its share of each epoch. A failure on the
+    main process before training is passed to the others, so no process waits forever.
     """
-    from detdiff.data.image_cache import ImageCache
     from detdiff.data.probes import PROBES_FILE, plant_missing_probes, probes_record, training_copy
-    from detdiff.train.distributed import barrier, broadcast_object, init_distributed, shutdown
+    from detdiff.train.distributed import all_true, barrier, broadcast_object, init_distributed, shutdown
     from detdiff.train.evaluate import final_pass
     from detdiff.train.loop import train_and_log
     from detdiff.train.resources import log_bytes
@@ -245,7 +287,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     failure: BaseException | None = None
     if dist.is_main:
         try:
-            dataset, cache, config = _prepare_main(annotations, images_dir, rundir, config, resume, progress, timings)
+            dataset, config = _prepare_main(annotations, images_dir, rundir, config, resume, progress, timings)
         except BaseException as exc:            # re-raised below, after the other processes are told
             failure = exc
     message = broadcast_object(None if failure is None else str(failure), dist)
@@ -254,10 +296,15 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
     if message is not None:
         raise RunFolderError(f"main process stopped before training: {message}")
     barrier()
+    if not all_true((rundir / DATASET_FILE).is_file(), dist):
+        raise RunFolderError(f"{rundir}: not visible to every process; with several machines the run folder (and "
+                             f"the images) must be on a filesystem that all of them mount at the same path")
     if not dist.is_main:
         dataset = load_saved_dataset(rundir / DATASET_FILE)
-        cache = ImageCache.open(rundir / "cache")
         config = load_saved_config(rundir / "config.yaml")       # the recipe's resolved values
+    t_cache = time.perf_counter()
+    cache = _build_cache(dataset, rundir, config, dist, progress)
+    timings["cache_s"] = time.perf_counter() - t_cache
     missing_probes = plant_missing_probes(dataset, config["probes"], int(config["train"]["seed"]))
     trained = training_copy(dataset, missing_probes)
     t1 = time.perf_counter()

@@ -115,7 +115,7 @@ def _dead_pid() -> int:
 
 def test_leftovers_are_removed_by_name_and_nothing_else(tmp_path):
     dead = _dead_pid()
-    temp = ["images.csv.tmp", "review.json.tmp", "dataset.npz.tmp.npz", f"run.json.tmp-{dead}",
+    temp = ["images.csv.tmp", "review.json.tmp", "objects.parquet.tmp", "dataset.npz.tmp.npz", f"run.json.tmp-{dead}",
             f"config.yaml.tmp-{dead}", f"checkpoint.pt.tmp-{dead}", f"object_features.npy.tmp-{dead}",
             f".write-probe-{dead}", f"cache/images.u8.tmp-{dead}", f"cache/crops.u8.tmp-{dead}",
             f"cache/meta.tmp-{dead}.npz", f"cache/decode-progress.tmp-{dead}.npz", f"cache/problems.json.tmp-{dead}",
@@ -138,7 +138,7 @@ def test_leftovers_are_removed_by_name_and_nothing_else(tmp_path):
     assert all((tmp_path / rel).exists() for rel in keep)
     assert find_leftovers(tmp_path) == []
     line = leftovers.leftovers_line(tmp_path, count, freed)
-    assert re.fullmatch(r"detdiff: removed 21 temporary files of an interrupted run from .+ "
+    assert re.fullmatch(r"detdiff: removed 22 temporary files of an interrupted run from .+ "
                         r"\([\d.]+ (?:kB|MB) reclaimed\)", line)
 
 
@@ -197,7 +197,7 @@ WORKERS_CHILD = textwrap.dedent("""
     real = image_cache._decode_task
     def slow(task):                         # same pixels, slower: the parent is killed mid-decode
         time.sleep(0.2)
-        print("worker", os.getpid(), flush=True)
+        os.write(1, f"worker {os.getpid()}\n".encode())   # one write: lines of two workers never interleave
         return real(task)
     image_cache._decode_task = slow
     dataset = build_dataset(read_coco_json(sys.argv[1]), images_dir=sys.argv[2])

@@ -156,7 +156,9 @@ def test_pixel_descriptors_equal_direct_opencv_calls(tmp_path):
     Image.fromarray(noisy).save(tmp_path / "noisy.png")
     box = (30, 20, 40, 30)
     ds = _dataset(tmp_path, [("square.png", 64, 64), ("noisy.png", 120, 90)], {1: [box]})
-    cache = build_image_cache(ds, tmp_path / "cache", 32, max_pixels=10**8, progress=False, workers=1)
+    # full-resolution descriptors (the view's are checked in test_reduced_decode.py)
+    cache = build_image_cache(ds, tmp_path / "cache", 32, max_pixels=10**8, progress=False, workers=1,
+                              reduced_decode=False)
     # /work/shared/CHECKS.md worked values (OpenCV): Laplacian variance 4191.06, Canny(100, 200) density 0.030273
     assert cache.pixel[0, 0] == pytest.approx(4191.06, rel=1e-5)
     assert cache.pixel[0, 3] == pytest.approx(0.030273, abs=1e-6)
@@ -180,3 +182,35 @@ def test_unwritable_or_full_cache_folder_is_refused(tmp_path, monkeypatch):
     monkeypatch.setattr(shutil, "disk_usage", lambda p: shutil._ntuple_diskusage(10**9, 10**9 - 100, 100))
     with pytest.raises(InsufficientSpaceError, match="needs about"):
         check_folder_room(tmp_path / "cache", 10**6, "the image cache")
+
+
+FORK_AFTER_OPENCV = """
+import sys
+import cv2
+import numpy as np
+from PIL import Image
+from detdiff.data.coco import build_dataset
+from detdiff.data.image_cache import build_image_cache
+
+root = sys.argv[1]
+for i in range(12):
+    Image.fromarray(np.full((40, 60, 3), 20 * i, np.uint8)).save(f"{root}/{i}.png")
+ds = build_dataset({"images": [{"id": i + 1, "file_name": f"{i}.png", "width": 60, "height": 40} for i in range(12)],
+                    "annotations": [], "categories": [{"id": 1, "name": "a"}]}, images_dir=root)
+big = np.random.default_rng(0).integers(0, 255, (2000, 3000, 3), dtype=np.uint8)
+for round in range(8):
+    cv2.setNumThreads(2)                                  # the parent's own OpenCV work runs on its thread pool
+    cv2.GaussianBlur(cv2.resize(big, (1500, 1000), interpolation=cv2.INTER_AREA), (9, 9), 3)
+    build_image_cache(ds, f"{root}/cache{round}", 32, max_pixels=10**8, progress=False, workers=2)
+print("ok")
+"""
+
+
+def test_fork_pool_after_the_parent_used_opencv_threads_does_not_hang(tmp_path):
+    import subprocess
+    import sys
+
+    (tmp_path / "child.py").write_text(FORK_AFTER_OPENCV)
+    done = subprocess.run([sys.executable, str(tmp_path / "child.py"), str(tmp_path)], capture_output=True,
+                          text=True, timeout=60, env={**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)})
+    assert done.returncode == 0 and done.stdout.strip() == "ok", done.stderr[-2000:]

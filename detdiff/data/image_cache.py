@@ -10,7 +10,8 @@ Files in ``cache_dir``::
 
     images.u8        uint8 [I, S, S, 3] RGB, raw memmap (shape in meta.npz)
     meta.npz         scale float64 [I], usable bool [I], pixel float32 [I, 4] (PIXEL_DESCRIPTOR_NAMES,
-                     NaN where unusable), image_ids int64 [I], image_size int
+                     NaN where unusable), image_ids int64 [I], image_size int, reduction uint8 [I] (JPEG
+                     decode reduction, below; 1 = full resolution or not decoded)
     problems.json    [{index, image_id, file_name, reason, usable, level}]: level "error" = unusable
                      (not trained on), "warning" = usable with a note (e.g. size differs from the file)
     crops.u8         uint8 [A, 64, 64, 3] one crop per annotation at the original resolution, for the
@@ -24,7 +25,19 @@ so a full disk fails at once with ENOSPC instead of killing a decode worker with
 the end, fingerprint last, so a killed build never leaves a cache that looks complete, and the next build
 of the same cache decodes only the images not yet done. Decode workers ignore Ctrl-C (the parent stops them)
 and end with their parent. Pixel descriptors (blur, brightness, contrast, clutter) and object crops are
-taken from the full-resolution pixels while they are in memory, so each image is read once overall.
+taken from the decoded pixels while they are in memory, so each image is read once overall.
+
+Reduced decoding (``reduced_decode``): a JPEG is decoded straight from the file at 1/2, 1/4 or 1/8 of its size
+(libjpeg's DCT scaling through Pillow's ``Image.draft``) when the reduction (:func:`draft_reduction`) divides both
+sides, leaves the longer side at least twice ``S`` (the letterbox then still averages 2x2 px or more into each view
+px: :data:`VIEW_OVERSAMPLE`) and leaves every box of the image at least :data:`MIN_CROP_SIDE` px on its shorter
+side (its crop keeps full stored resolution). A 4000x3000 photo with no box under 64 px decodes at 1000x750 for a
+320 px view; an image with one small box keeps full resolution. Box geometry is unchanged (``scale`` refers to the
+declared size). Pixel descriptors are then measured on the training view (the letterboxed image without its
+padding, boxes ``* scale``), so they do not depend on which reduction an image got: at full resolution an image
+decoded whole because of one small box would look blurrier and less cluttered than its reduced neighbours
+(Laplacian variance and edge density both grow as an image shrinks), and the causes analysis would read that as a
+property of hard images. Without ``reduced_decode`` every image is decoded whole and measured at full resolution.
 """
 
 from __future__ import annotations
@@ -43,7 +56,7 @@ import time
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import cv2
 import numpy as np
@@ -51,10 +64,10 @@ from PIL import Image, ImageOps, UnidentifiedImageError
 from tqdm import tqdm
 
 from detdiff.atomic import allocate, write_text_atomic
-from detdiff.crossfit.crops import CROPS_FILE, STORE, crop_bytes, object_crops
+from detdiff.crossfit.crops import CONTEXT, CROPS_FILE, STORE, crop_bytes, object_crops
 from detdiff.data.coco import CocoDataset, UnsafeImagePath, resolve_image_path
 from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
-from detdiff.stages import DISK_FULL_ERRNOS, InsufficientSpaceError
+from detdiff.stages import DISK_FULL_ERRNOS, InsufficientSpaceError  # noqa: F401  (re-exported)
 
 PAD_VALUE = 114
 CACHE_FORMAT_VERSION = 2
@@ -67,6 +80,16 @@ PROGRESS_FILE = "decode-progress.npz"
 #: Least seconds between two saves of the decode progress (a save writes about 30 bytes per image).
 PROGRESS_EVERY_S = 2.0
 _PR_SET_PDEATHSIG = 1                         # prctl option of Linux <sys/prctl.h>
+#: JPEG decode reductions tried, largest first (libjpeg scales by 1/2, 1/4 and 1/8 while decoding).
+DRAFT_REDUCTIONS = (8, 4, 2)
+#: A reduced image keeps at least this many px per view px on its longer side. At 1-2 the view came out softer
+#: than from a full decode (Laplacian variance 0.6-0.75x, two box filters in a row); at >= 2 it was 0.87-1.0x
+#: (scikit-image's photos enlarged to 4000x3000 and 1920x1080 with sensor noise, views of 320 and 512 px).
+VIEW_OVERSAMPLE = 2
+#: A box keeps a full-resolution crop when its shorter side is at least this many decoded px: a stored crop
+#: covers CONTEXT box sides in STORE px.
+MIN_CROP_SIDE = STORE / CONTEXT
+
 
 
 def check_folder_room(folder: str | Path, needed_bytes: int, what: str) -> None:
@@ -151,7 +174,7 @@ def _image_root(dataset: CocoDataset) -> Path:
 
 
 def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pixels: bool,
-                 with_crops: bool) -> dict[str, Any]:
+                 with_crops: bool, reduced_decode: bool) -> dict[str, Any]:
     """What the cache depends on: dataset records, boxes (for clutter), view size, and the files' stat."""
     root = _image_root(dataset).resolve()
     digest = hashlib.sha256()
@@ -167,7 +190,8 @@ def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pi
             pass
     digest.update(stats.tobytes())
     return {"version": CACHE_FORMAT_VERSION, "image_size": int(image_size), "max_pixels": int(max_pixels),
-            "pixel_descriptors": bool(with_pixels), "crops": bool(with_crops), "num_images": int(dataset.num_images),
+            "pixel_descriptors": bool(with_pixels), "crops": bool(with_crops), "reduced_decode": bool(reduced_decode),
+            "num_images": int(dataset.num_images),
             "image_root": str(root), "digest": digest.hexdigest()}
 
 
@@ -199,15 +223,46 @@ def _to_rgb8(im: Image.Image) -> np.ndarray:
         alpha = rgba[:, :, 3:4] / 255.0
         rgb = rgba[:, :, :3] * alpha + PAD_VALUE * (1.0 - alpha)
         return np.clip(np.rint(rgb), 0, 255).astype(np.uint8)
-    return np.asarray(im.convert("RGB"))
+    return np.asarray(im if mode == "RGB" else im.convert("RGB"))      # convert("RGB") of RGB copies
 
 
 class _Refused(Exception):
     """An image that cannot be used; the message is the reason recorded in problems.json."""
 
 
-def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
-    """Read one file into uint8 RGB at full resolution, EXIF orientation applied; raise ``_Refused``."""
+def draft_reductions(widths: np.ndarray, heights: np.ndarray, smallest_box_sides: np.ndarray,
+                     image_size: int) -> np.ndarray:
+    """Per image, the largest of :data:`DRAFT_REDUCTIONS` that divides both sides, keeps the longer side at least
+    :data:`VIEW_OVERSAMPLE` x ``image_size`` and the shorter side of the image's smallest box (``inf`` without
+    boxes) at least :data:`MIN_CROP_SIDE` px; else 1 (int64 ``[I]``).
+
+    Dividing both sides keeps the reduced pixel grid the original's (pixel ``i`` covers original pixels
+    ``r*i .. r*i + r - 1``), so a box maps back exactly by ``* r``.
+    """
+    w, h = np.asarray(widths, dtype=np.int64), np.asarray(heights, dtype=np.int64)
+    smallest = np.asarray(smallest_box_sides, dtype=np.float64)
+    out = np.ones(len(w), dtype=np.int64)
+    for r in sorted(DRAFT_REDUCTIONS):              # each allowed r also allows every smaller one
+        ok = ((w % r == 0) & (h % r == 0) & (np.maximum(w, h) >= VIEW_OVERSAMPLE * image_size * r)
+              & (smallest >= MIN_CROP_SIDE * r))
+        out[ok] = r
+    return out
+
+
+def draft_reduction(width: int, height: int, boxes_xywh: np.ndarray, image_size: int) -> int:
+    """:func:`draft_reductions` of one ``width x height`` image with ``boxes_xywh`` in its pixels."""
+    boxes = np.asarray(boxes_xywh, dtype=np.float64).reshape(-1, 4)
+    smallest = float(boxes[:, 2:].min()) if len(boxes) else np.inf
+    return int(draft_reductions(np.array([width]), np.array([height]), np.array([smallest]), image_size)[0])
+
+
+def _decode_full(path: Path, max_pixels: int,
+                 reduce: Callable[[int, int], int] | None = None) -> tuple[np.ndarray, int]:
+    """Read one file into uint8 RGB, EXIF orientation applied; returns (pixels, reduction); raise ``_Refused``.
+
+    ``reduce(width, height) -> r`` (header size, before EXIF rotation) asks for a JPEG decoded at ``1/r`` of
+    its size (``Image.draft``); other formats and ``reduce=None`` decode at full resolution (reduction 1).
+    """
     try:
         size = path.stat().st_size
     except FileNotFoundError:
@@ -224,9 +279,13 @@ def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
                 if w * h > max_pixels:
                     raise _Refused(f"{w}x{h} = {w * h} pixels exceeds data.max_pixels = {max_pixels}; "
                                    f"refused before decoding")
+                reduction = reduce(w, h) if reduce is not None and im.format in ("JPEG", "MPO") else 1
+                if reduction > 1:
+                    drafted = im.draft("RGB", (w // reduction, h // reduction))
+                    reduction = 1 if drafted is None else int(round(w / drafted[1][2]))
                 im.load()
-                im = ImageOps.exif_transpose(im)    # COCO sizes are of the displayed (rotated) image
-                return _to_rgb8(im)
+                ImageOps.exif_transpose(im, in_place=True)    # COCO sizes are of the displayed image
+                return _to_rgb8(im), reduction
     except _Refused:
         raise
     except Image.DecompressionBombError as exc:
@@ -237,11 +296,17 @@ def _decode_full(path: Path, max_pixels: int) -> np.ndarray:
         raise _Refused(f"corrupt or truncated image ({type(exc).__name__}: {exc})") from None
 
 
+def view_extent(declared_w: int, declared_h: int, image_size: int) -> tuple[int, int]:
+    """Width and height of the image inside its ``S x S`` view (the rest is padding)."""
+    scale = image_size / max(declared_w, declared_h)
+    return (min(image_size, max(1, int(round(declared_w * scale)))),
+            min(image_size, max(1, int(round(declared_h * scale)))))
+
+
 def letterbox(image_rgb: np.ndarray, declared_w: int, declared_h: int, image_size: int) -> tuple[np.ndarray, float]:
     """Resize ``image_rgb [h, w, 3]`` to the declared size's view and pad to ``[S, S, 3]``; returns (view, scale)."""
     scale = image_size / max(declared_w, declared_h)
-    new_w = min(image_size, max(1, int(round(declared_w * scale))))
-    new_h = min(image_size, max(1, int(round(declared_h * scale))))
+    new_w, new_h = view_extent(declared_w, declared_h, image_size)
     h, w = image_rgb.shape[:2]
     shrinking = new_w * new_h < w * h
     resized = cv2.resize(image_rgb, (new_w, new_h), interpolation=cv2.INTER_AREA if shrinking else cv2.INTER_LINEAR)
@@ -255,13 +320,15 @@ _WORKER: dict[str, Any] = {}
 
 
 def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool,
-                 crops_path: str | None, num_crops: int) -> None:
-    cv2.setNumThreads(1)
+                 crops_path: str | None, num_crops: int, reduced_decode: bool) -> None:
+    if cv2.getNumThreads() != 1:     # in a forked worker the parent already made it 1 (see build_image_cache)
+        cv2.setNumThreads(1)
     _WORKER["images"] = np.memmap(images_path, dtype=np.uint8, mode="r+", shape=shape)
     _WORKER["crops"] = (np.memmap(crops_path, dtype=np.uint8, mode="r+", shape=(num_crops, STORE, STORE, 3))
                         if crops_path and num_crops else None)
     _WORKER["max_pixels"] = max_pixels
     _WORKER["with_pixels"] = with_pixels
+    _WORKER["reduced_decode"] = reduced_decode
 
 
 def _exit_with_parent(parent: int) -> None:
@@ -294,25 +361,38 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, 
     images = _WORKER["images"]
     size = images.shape[1]
     out: dict[str, Any] = {"index": index, "scale": size / max(declared_w, declared_h), "usable": False,
-                           "pixel": np.full(len(PIXEL_DESCRIPTOR_NAMES), np.nan, dtype=np.float32), "notes": []}
+                           "pixel": np.full(len(PIXEL_DESCRIPTOR_NAMES), np.nan, dtype=np.float32), "notes": [],
+                           "reduction": 1}
+
+    def reduce(file_w: int, file_h: int) -> int:
+        if sorted((file_w, file_h)) != sorted((declared_w, declared_h)):
+            return 1                                # size disagrees with the annotation: decode it all
+        return draft_reduction(file_w, file_h, boxes_xywh, size)
+
     try:
         if refusal is not None:
             raise _Refused(refusal)
-        full = _decode_full(Path(path), _WORKER["max_pixels"])
+        full, reduction = _decode_full(Path(path), _WORKER["max_pixels"],
+                                       reduce if _WORKER["reduced_decode"] else None)
     except _Refused as exc:
         images[index] = PAD_VALUE
         out["notes"].append(("error", str(exc)))
         return out
+    out["reduction"] = reduction
     h, w = full.shape[:2]
-    if (w, h) != (declared_w, declared_h):
+    file_w, file_h = w * reduction, h * reduction
+    if (file_w, file_h) != (declared_w, declared_h):
         hint = (" (the declared size is this one turned by 90 degrees: was the EXIF orientation ignored "
-                "when it was annotated?)" if (h, w) == (declared_w, declared_h) else "")
-        out["notes"].append(("warning", f"decoded size {w}x{h} differs from the declared {declared_w}x{declared_h}; "
-                                        f"resized to the declared size{hint}"))
+                "when it was annotated?)" if (file_h, file_w) == (declared_w, declared_h) else "")
+        out["notes"].append(("warning", f"decoded size {file_w}x{file_h} differs from the declared "
+                                        f"{declared_w}x{declared_h}; resized to the declared size{hint}"))
     try:
         view, scale = letterbox(full, declared_w, declared_h, size)
         boxes_here = np.asarray(boxes_xywh, dtype=np.float64) * np.array([w / declared_w, h / declared_h] * 2)
-        if _WORKER["with_pixels"]:
+        if _WORKER["with_pixels"] and _WORKER["reduced_decode"]:     # on the view: the same whatever the reduction
+            new_w, new_h = view_extent(declared_w, declared_h, size)
+            out["pixel"] = pixel_descriptors(view[:new_h, :new_w], np.asarray(boxes_xywh, dtype=np.float64) * scale)
+        elif _WORKER["with_pixels"]:
             out["pixel"] = pixel_descriptors(full, boxes_here)
         if _WORKER["crops"] is not None and len(boxes_here):
             _WORKER["crops"][first_ann:first_ann + len(boxes_here)] = object_crops(full, boxes_here)
@@ -362,6 +442,7 @@ class _DecodeProgress:
         self.scale = np.full(num, np.nan, dtype=np.float64)
         self.usable = np.zeros(num, dtype=bool)
         self.pixel = np.full((num, len(PIXEL_DESCRIPTOR_NAMES)), np.nan, dtype=np.float32)
+        self.reduction = np.ones(num, dtype=np.uint8)
         self.problems: list[dict[str, Any]] = []
         self.saved_at, self.every = time.monotonic(), PROGRESS_EVERY_S
 
@@ -372,7 +453,8 @@ class _DecodeProgress:
                 if str(saved["key"]) != self.key or len(saved["done"]) != len(self.done):
                     return False
                 self.done, self.scale, self.usable = saved["done"], saved["scale"], saved["usable"]
-                self.pixel, self.problems = saved["pixel"], json.loads(str(saved["problems"]))
+                self.pixel, self.reduction = saved["pixel"], saved["reduction"]
+                self.problems = json.loads(str(saved["problems"]))
         except (OSError, ValueError, KeyError):
             return False
         return True
@@ -383,7 +465,7 @@ class _DecodeProgress:
         tmp = self.path.with_name(f"decode-progress.tmp-{os.getpid()}.npz")
         with open(tmp, "wb") as fh:
             np.savez(fh, key=np.array(self.key), done=self.done, scale=self.scale, usable=self.usable,
-                     pixel=self.pixel, problems=np.array(json.dumps(self.problems)))
+                     pixel=self.pixel, reduction=self.reduction, problems=np.array(json.dumps(self.problems)))
         os.replace(tmp, self.path)
         now = time.monotonic()
         self.saved_at, self.every = now, max(PROGRESS_EVERY_S, 50 * (now - started))
@@ -400,9 +482,52 @@ def _resumable(cache_dir: Path, sizes: dict[str, int], progress: _DecodeProgress
     return progress.load()
 
 
+def current_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
+                  pixel_stats: bool = True, with_crops: bool = False, reduced_decode: bool = True) -> ImageCache | None:
+    """The complete cache in ``cache_dir`` when it was built from this dataset, these files and settings, else None."""
+    cache_dir = Path(cache_dir)
+    fp_path = cache_dir / FINGERPRINT_FILE
+    if not fp_path.is_file():
+        return None
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
+    try:
+        if json.loads(fp_path.read_text()) == fingerprint:
+            return ImageCache.open(cache_dir)
+    except (OSError, ValueError, KeyError, FileNotFoundError):
+        pass
+    return None
+
+
+def _clear_for_build(cache_dir: Path, needed_bytes: int) -> None:
+    """Check that ``needed_bytes`` fit (counting what an outdated cache or an abandoned partial build frees), then
+    remove them, fingerprint first (from then on no complete cache is claimed)."""
+    outdated = [cache_dir / n for n in (IMAGES_FILE, CROPS_FILE, IMAGES_FILE + PARTIAL, CROPS_FILE + PARTIAL)]
+    reclaimable = sum(f.stat().st_size for f in outdated if f.is_file())
+    check_folder_room(cache_dir, max(0, needed_bytes - reclaimable) + 1_000_000, "the image cache")
+    (cache_dir / FINGERPRINT_FILE).unlink(missing_ok=True)
+    for stale in (*outdated, cache_dir / PROGRESS_FILE):
+        stale.unlink(missing_ok=True)                     # an outdated cache only takes room
+
+
+def _publish(cache_dir: Path, maps: dict[str, Path], meta: dict[str, Any], problems: list[dict[str, Any]],
+             fingerprint: dict[str, Any]) -> ImageCache:
+    """Write meta and problems atomically, rename the finished memory maps (final name -> where they were
+    written) into place, then the fingerprint, last; the decode progress is no longer needed."""
+    meta_tmp = cache_dir / f"meta.tmp-{os.getpid()}.npz"
+    with open(meta_tmp, "wb") as fh:
+        np.savez(fh, **meta)
+    os.replace(meta_tmp, cache_dir / META_FILE)
+    write_text_atomic(cache_dir / PROBLEMS_FILE, json.dumps(problems, indent=1))
+    for name, written in maps.items():
+        os.replace(written, cache_dir / name)
+    write_text_atomic(cache_dir / FINGERPRINT_FILE, json.dumps(fingerprint, indent=1))
+    (cache_dir / PROGRESS_FILE).unlink(missing_ok=True)
+    return ImageCache.open(cache_dir)
+
+
 def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
                       progress: bool = True, workers: int = 2, pixel_stats: bool = True,
-                      with_crops: bool = False) -> ImageCache:
+                      with_crops: bool = False, reduced_decode: bool = True) -> ImageCache:
     """Decode every image of ``dataset`` once into ``cache_dir`` (see module docstring) and open it.
 
     A complete cache for the same dataset, files and view size is reused as is; an interrupted build of
@@ -411,16 +536,15 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     in ``problems.json`` and the build goes on. ``workers`` > 1 decodes in a process pool of that size.
     ``pixel_stats`` = False skips the descriptors (``analysis.pixel_descriptors`` off): ``pixel`` is NaN.
     ``with_crops`` also stores one crop per annotation (``crops.u8``) for the cross-fitted crop models.
+    ``reduced_decode`` decodes large JPEGs at reduced size where views and crops allow (module docstring).
     """
     cache_dir = Path(cache_dir)
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops)
+    reusable = current_cache(dataset, cache_dir, image_size, max_pixels=max_pixels, pixel_stats=pixel_stats,
+                             with_crops=with_crops, reduced_decode=reduced_decode)
+    if reusable is not None:
+        return reusable
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
     fp_path = cache_dir / FINGERPRINT_FILE
-    if fp_path.is_file():
-        try:
-            if json.loads(fp_path.read_text()) == fingerprint:
-                return ImageCache.open(cache_dir)
-        except (OSError, ValueError, KeyError, FileNotFoundError):
-            pass
     num = dataset.num_images
     num_crops = dataset.num_annotations if with_crops else 0
     shape = (num, image_size, image_size, 3)
@@ -430,24 +554,20 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
         check_folder_room(cache_dir, 1_000_000, "the image cache")
         fp_path.unlink(missing_ok=True)
     else:
-        outdated = [cache_dir / n for n in (IMAGES_FILE, CROPS_FILE, IMAGES_FILE + PARTIAL, CROPS_FILE + PARTIAL)]
-        reclaimable = sum(f.stat().st_size for f in outdated if f.is_file())
-        check_folder_room(cache_dir, max(0, sum(sizes.values()) - reclaimable) + 1_000_000, "the image cache")
-        fp_path.unlink(missing_ok=True)                   # from here on, no complete cache is claimed
-        for stale in (*outdated, cache_dir / PROGRESS_FILE):
-            stale.unlink(missing_ok=True)                 # an outdated cache only takes room
+        _clear_for_build(cache_dir, sum(sizes.values()))
         for name, size in sizes.items():
             allocate(cache_dir / (name + PARTIAL), size)
     images_path = cache_dir / (IMAGES_FILE + PARTIAL)
     crops_path = cache_dir / (CROPS_FILE + PARTIAL) if with_crops else None
     init_args = (str(images_path), shape, int(max_pixels), bool(pixel_stats),
-                 None if crops_path is None else str(crops_path), num_crops)
+                 None if crops_path is None else str(crops_path), num_crops, bool(reduced_decode))
     todo = int((~state.done).sum())
     bar = tqdm(total=num, initial=num - todo, desc="decode images", unit="img", disable=not progress, leave=False)
 
     def collect(result: dict[str, Any]) -> None:
         i = result["index"]
-        state.scale[i], state.usable[i], state.pixel[i] = result["scale"], result["usable"], result["pixel"]
+        state.scale[i], state.usable[i], state.pixel[i], state.reduction[i] = (
+            result["scale"], result["usable"], result["pixel"], result["reduction"])
         for level, reason in result["notes"]:
             state.problems.append({"index": int(i), "image_id": int(dataset.image_ids[i]),
                                    "file_name": dataset.file_names[i], "reason": reason,
@@ -474,9 +594,16 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                 _WORKER.clear()
                 _WORKER.update(saved)
         else:
-            with _pool_context().Pool(workers, _init_pool_worker, (os.getpid(), *init_args)) as pool:
-                for result in pool.imap_unordered(_decode_task, tasks, chunksize=8):
-                    collect(result)
+            # OpenCV's thread pool must be stopped before the fork: a forked worker that reconfigures the pool
+            # it inherited from a parent that used it waits forever in pthread_cond_destroy
+            opencv_threads = cv2.getNumThreads()
+            cv2.setNumThreads(1)
+            try:
+                with _pool_context().Pool(workers, _init_pool_worker, (os.getpid(), *init_args)) as pool:
+                    for result in pool.imap_unordered(_decode_task, tasks, chunksize=8):
+                        collect(result)
+            finally:
+                cv2.setNumThreads(opencv_threads)
     except BaseException:
         with contextlib.suppress(OSError):
             state.save()                                  # finished rows are kept for the next build
@@ -485,14 +612,6 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
         bar.close()
 
     problems = sorted(state.problems, key=lambda p: (p["index"], p["level"]))
-    meta_tmp = cache_dir / f"meta.tmp-{os.getpid()}.npz"
-    with open(meta_tmp, "wb") as fh:
-        np.savez(fh, scale=state.scale, usable=state.usable, pixel=state.pixel, image_ids=dataset.image_ids,
-                 image_size=np.int64(image_size))
-    os.replace(meta_tmp, cache_dir / META_FILE)
-    write_text_atomic(cache_dir / PROBLEMS_FILE, json.dumps(problems, indent=1))
-    for name in sizes:
-        os.replace(cache_dir / (name + PARTIAL), cache_dir / name)
-    write_text_atomic(fp_path, json.dumps(fingerprint, indent=1))
-    (cache_dir / PROGRESS_FILE).unlink(missing_ok=True)
-    return ImageCache.open(cache_dir)
+    meta = {"scale": state.scale, "usable": state.usable, "pixel": state.pixel, "image_ids": dataset.image_ids,
+            "image_size": np.int64(image_size), "reduction": state.reduction}
+    return _publish(cache_dir, {name: cache_dir / (name + PARTIAL) for name in sizes}, meta, problems, fingerprint)

@@ -1,7 +1,8 @@
 """What an image's pixels look like: blur, light, contrast and background clutter.
 
-Computed once per image while it is decoded for the training cache (see ``detdiff.data.image_cache``),
-on the full-resolution image, so no image is read twice.
+Computed once per image while it is decoded for the training cache (see ``detdiff.data.image_cache``), so no
+image is read twice: on the training view (the letterboxed image without padding) when large JPEGs may be
+decoded at reduced size (``data.reduced_decode``, the default), else on the full-resolution image.
 """
 
 from __future__ import annotations

@@ -88,6 +88,15 @@ def broadcast_object(obj: object, info: DistInfo) -> object:
     return box[0]
 
 
+def all_gather_object(obj: object, info: DistInfo) -> list:
+    """Every rank's ``obj``, in rank order, on every rank (pickled; for small things such as an error message)."""
+    if not info.distributed:
+        return [obj]
+    gathered: list = [None] * info.world_size
+    dist.all_gather_object(gathered, obj)
+    return gathered
+
+
 def epoch_order(indices: np.ndarray, seed: int, epoch: int) -> np.ndarray:
     """``indices`` shuffled for ``epoch``; the same on every rank and in every run with the same seed."""
     return np.random.Generator(np.random.PCG64([int(seed), int(epoch)])).permutation(np.asarray(indices))

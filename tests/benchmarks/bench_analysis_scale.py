@@ -3,7 +3,9 @@
 Box descriptors only (no pixel descriptors, no pooled features). The dataset and log are synthetic and
 written first; the analysis then runs in a fresh child process so its peak memory (``ru_maxrss``) is its
 own. Goals: analyze_run <= 60 s and <= 4 GB. Also prints, side by side in the same run, the vectorised
-same-image pair pass against a per-image loop over ``torchvision.ops.box_iou`` on a sample of images.
+same-image pair pass against a per-image loop over ``torchvision.ops.box_iou`` on a sample of images, and the
+time to read the objects table back as the Python API does, from the CSV and from its Parquet copy (each in a
+fresh process, the best of three: a notebook opening a run pays the first read).
 
 Run: ``.venv/bin/python tests/benchmarks/bench_analysis_scale.py [--images N --boxes N --epochs N]``
 """
@@ -116,7 +118,7 @@ def _load_dataset(path: Path) -> CocoDataset:
 
 def analyze_child(rundir: Path) -> dict:
     """In the child process: analyze_run, then write_tables; timings and this process's peak RSS."""
-    from detdiff.analysis.tables import analyze_run, write_tables
+    from detdiff.analysis.tables import analyze_run, parquet_available, write_tables
     from detdiff.config import load_config
 
     ds = _load_dataset(rundir / "dataset.npz")
@@ -128,8 +130,37 @@ def analyze_child(rundir: Path) -> dict:
     start = time.perf_counter()
     write_tables(tables, rundir, ds)
     write_s = time.perf_counter() - start
-    return {"analyze_s": analyze_s, "write_s": write_s, "suspects": len(tables.suspects),
+    start = time.perf_counter()
+    tables.objects.round(6).to_parquet(rundir / "objects.again.parquet", index=False)
+    parquet_s = time.perf_counter() - start if parquet_available() else float("nan")
+    return {"analyze_s": analyze_s, "write_s": write_s, "objects_parquet_s": parquet_s, "suspects": len(tables.suspects),
             "causes_rows": len(tables.causes), "peak_rss_bytes": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}
+
+
+READ_MODES = ("csv", "parquet", "parquet_2_columns")
+
+
+def read_child(path: Path, mode: str) -> float:
+    """In a fresh process: seconds to read ``objects`` as ``AuditRun.objects`` / ``.table`` do, from the CSV or its
+    Parquet copy."""
+    from detdiff.report import run_folder
+
+    if mode == "csv":
+        run_folder.parquet_copy = lambda csv: None
+    start = time.perf_counter()
+    run_folder.read_table(path, only=["annotation_id", "pos_score"] if mode == "parquet_2_columns" else None)
+    return time.perf_counter() - start
+
+
+def read_times(rundir: Path, repeats: int = 3) -> dict[str, float]:
+    """Best of ``repeats`` fresh-process reads of objects.csv per :data:`READ_MODES`, interleaved."""
+    best = {mode: float("inf") for mode in READ_MODES}
+    for _ in range(repeats):
+        for mode in READ_MODES:
+            done = subprocess.run([sys.executable, __file__, "--read-child", str(rundir / "objects.csv"), mode],
+                                  capture_output=True, text=True, check=True)
+            best[mode] = min(best[mode], float(done.stdout.strip().splitlines()[-1]))
+    return best
 
 
 def pair_pass_vs_loop(ds: CocoDataset, sample: int = 3000) -> tuple[float, float, int]:
@@ -164,9 +195,13 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--boxes", type=int, default=860_000)
     parser.add_argument("--epochs", type=int, default=4)
     parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--read-child", nargs=2, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
         print(json.dumps(analyze_child(args.child)))
+        return 0
+    if args.read_child:
+        print(read_child(Path(args.read_child[0]), args.read_child[1]))
         return 0
     with tempfile.TemporaryDirectory(prefix="bench_analysis_") as tmp:
         rundir = Path(tmp)
@@ -181,13 +216,21 @@ def main(argv: list[str] | None = None) -> int:
         done = subprocess.run([sys.executable, __file__, "--child", str(rundir)], capture_output=True, text=True,
                               check=True)
         res = json.loads(done.stdout.strip().splitlines()[-1])
+        reads = read_times(rundir) if (rundir / "objects.parquet").exists() else None
         fast_s, slow_s, sample_boxes = pair_pass_vs_loop(ds)
     gib = res["peak_rss_bytes"] / 1024 ** 3
     print(f"analyze_run: {res['analyze_s']:.1f} s = {res['analyze_s'] / GOAL_SECONDS:.2f} x the 60 s goal; "
           f"peak RSS {gib:.2f} GiB = {res['peak_rss_bytes'] / GOAL_BYTES:.2f} x the 4 GiB goal")
-    print(f"write_tables (5 CSVs + review.json): {res['write_s']:.1f} s = "
+    print(f"write_tables (5 CSVs, 2 Parquet copies, review.json): {res['write_s']:.1f} s = "
           f"{res['write_s'] / res['analyze_s']:.2f} x analyze_run; {res['suspects']} suspects, "
-          f"{res['causes_rows']} causes rows")
+          f"{res['causes_rows']} causes rows; objects.parquet alone {res['objects_parquet_s']:.1f} s = "
+          f"{res['objects_parquet_s'] / res['write_s']:.2f} of write_tables")
+    if reads is None:
+        print("objects table read: pyarrow not installed, CSV only")
+    else:
+        print(f"objects table read by the API (fresh process, best of 3): CSV {reads['csv']:.2f} s, Parquet "
+              f"{reads['parquet']:.2f} s = {reads['csv'] / reads['parquet']:.1f}x faster; two columns of the "
+              f"Parquet {reads['parquet_2_columns']:.3f} s = {reads['csv'] / reads['parquet_2_columns']:.0f}x")
     print(f"same-image max IoU on {sample_boxes} boxes: vectorised {fast_s * 1e3:.0f} ms vs per-image "
           f"torchvision loop {slow_s * 1e3:.0f} ms = {slow_s / fast_s:.1f}x faster")
     ok = res["analyze_s"] <= GOAL_SECONDS and res["peak_rss_bytes"] <= GOAL_BYTES

@@ -8,7 +8,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 ORDER = ["bench_lint_scale.py", "bench_detector.py", "bench_memory.py", "bench_analysis_scale.py",
-         "bench_validity.py"]
+         "bench_scale.py", "bench_validity.py"]
 
 
 def main() -> int:

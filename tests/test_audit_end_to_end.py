@@ -45,7 +45,8 @@ def demo_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("demo")
     demo = generate_demo(root / "data", num_images=300, seed=1, progress=False)
     run_audit(demo.annotations, demo.images_dir, root / "run", config_path="ci",
-              overrides={**MODEL, "data": {"image_size": 160}, "train": {"epochs": 16}}, progress=False,
+              overrides={**MODEL, "data": {"image_size": 160}, "train": {"epochs": 16},
+                         "crossfit": {"epochs": "auto"}}, progress=False,
               make_report=True)
     return open_run(root / "run"), demo
 
@@ -69,13 +70,17 @@ def test_swapped_digits_are_suspected_with_the_true_class(digits_run) -> None:
 def test_demo_planted_wrong_classes_rank_above_clean_boxes(demo_run) -> None:
     run, demo = demo_run
     scores = score_against_truth(run.rundir, demo.truth)
-    assert scores["wrong_class"]["auroc"] > 0.75, scores["wrong_class"]   # measured 0.88
+    # the evidence behind the list (cross-fitted crop models, 30 epochs here): measured 0.973
+    assert scores["wrong_class"]["auroc_evidence"] > 0.9, scores["wrong_class"]
+    # the in-sample positive-class stream is a difficulty score, weaker as evidence: measured 0.76 with the
+    # recipe's dimension-cluster anchors (0.85 with the fixed grid anchors, at a 160 px view)
+    assert scores["wrong_class"]["auroc"] > 0.65, scores["wrong_class"]
     assert scores["wrong_class"]["auroc"] > scores["wrong_class"]["auroc_random"]
 
 
 def test_demo_detector_learned_something(demo_run) -> None:
     run, _ = demo_run
-    assert run.metrics["AP50"] > 0.4, run.metrics                        # measured 0.66
+    assert run.metrics["AP50"] > 0.4, run.metrics                        # measured 0.62
 
 
 def test_review_file_loads_in_pycocotools(demo_run) -> None:

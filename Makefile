@@ -3,7 +3,7 @@ PY := $(VENV)/bin/python
 PIP := $(VENV)/bin/pip
 DEMO_DIR ?= demo_data
 RUN_DIR ?= runs/demo
-CONFIG ?= topdown
+FLIPS ?= dihedral
 
 .PHONY: demo test bench wheel install install-test clean
 
@@ -23,10 +23,11 @@ install: $(VENV)/.installed
 
 install-test: $(VENV)/.installed-test
 
-## make demo: set up, generate the demo warehouse dataset, audit it, print where the results are
+## make demo: set up, generate the demo warehouse dataset, audit it with default settings, print where the results are
+## (the one choice passed is --flips: the demo is a ceiling camera, its view has no up, down, left or right)
 demo: install
 	$(VENV)/bin/detdiff demo --out $(DEMO_DIR)
-	$(VENV)/bin/detdiff audit $(DEMO_DIR)/annotations.json --images $(DEMO_DIR)/images --out $(RUN_DIR) --config $(CONFIG)
+	$(VENV)/bin/detdiff audit $(DEMO_DIR)/annotations.json --images $(DEMO_DIR)/images --out $(RUN_DIR) --flips $(FLIPS)
 
 ## make test: install test extras and run the whole suite
 test: install-test

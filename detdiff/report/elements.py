@@ -71,6 +71,8 @@ def el(tag: str, attrs: dict[str, Any] | None = None, *children: Any) -> Markup:
 
 def fmt(value: Any, digits: int = 3) -> str:
     """A number for people: ``1,234``, ``12.35``, ``0.0412``; missing as an en dash."""
+    if value is None:
+        return "\u2013"
     try:
         number = float(value)
     except (TypeError, ValueError):

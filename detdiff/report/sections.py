@@ -42,7 +42,7 @@ SELF_CHECK_NOTE = ("Before training, the audit made faults of its own: boxes lef
                    "that never trained on its image. How well each kind of planted fault ranks above the real "
                    "items is the audit's accuracy on this dataset (AUROC, 95% interval); the same scores estimate "
                    "each suspect's probability of being a real fault, and each list stops where that probability "
-                   "falls below the level shown. The planted faults never appear in any list or table.")
+                   "falls below the level shown. No planted fault is ever listed as a suspect.")
 #: (anchor, label) of each section, for the page's menu
 NAV = [("overview", "Overview"), ("actions", "What to do"), ("stream-loc", "Box regression"),
        ("stream-pos", "Positive class"), ("stream-neg", "Background class"), ("suspects", "Suspects"),
@@ -255,7 +255,9 @@ def _self_check_table(run: RunFolder) -> Markup | None:
             continue
         ci = check.get("auroc_ci95") or [None, None]
         interval = f"{ci[0]:.3f}-{ci[1]:.3f}" if all(isinstance(v, (int, float)) for v in ci) else ""
-        rows.append([KIND_TITLES[kind], num_cell(check.get("probes")), num_cell(check.get("auroc")), interval,
+        auroc = check.get("auroc")
+        auroc_text = f"{auroc:.3f}" if isinstance(auroc, (int, float)) and auroc == auroc else None
+        rows.append([KIND_TITLES[kind], num_cell(check.get("probes")), num_cell(auroc, auroc_text), interval,
                      num_cell(check.get("fault_share"), format_percent(check["fault_share"])
                               if isinstance(check.get("fault_share"), (int, float)) else ""),
                      num_cell(check.get("listed")), num_cell(check.get("expected_precision")),

@@ -101,8 +101,10 @@ def coco_metrics(gt_dict: dict[str, Any], detections: list[dict[str, Any]], *, m
     metrics["min_ap50"] = float(min_ap50)
     metrics["warning"] = None if metrics["trustworthy"] else (
         f"The detector trained on this dataset reached only AP50 {ap50:.3f} (below eval.min_ap50 = {min_ap50}), "
-        f"so its losses measure the detector's weakness as much as the data: treat the difficulty scores and "
-        f"suspects as rough, and train longer (train.epochs) or larger (data.image_size, model.width).")
+        f"so its losses measure the detector's weakness as much as the data: treat the difficulty scores and the "
+        f"missing-box suspects as rough (a larger --image-size or --budget helps when objects are small in the "
+        f"view). The wrong-class and loose-box lists come from crop models at full resolution, not from this "
+        f"detector: their self-check says how far to trust them.")
     return metrics
 
 

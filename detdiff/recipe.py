@@ -24,7 +24,9 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
   epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their epochs shrink, down to
   ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the view shrinks first
   (down to ``recipe.min_view``; a detector needs its steps more than its pixels), then the epochs (down to
-  ``recipe.min_epochs``). The detector is timed at the wanted view and at the chosen one; sizes between are
+  ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by 32 px, up to
+  ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the
+  smallest objects. The detector is timed at the wanted view and at the chosen one; sizes between are
   estimated in proportion to the pixels. Every trade is said.
 """
 
@@ -78,12 +80,18 @@ def box_view_sides(dataset: CocoDataset, image_size: int) -> np.ndarray:
     return side * image_size / long_side
 
 
+def _largest_view(dataset: CocoDataset, cfg: dict[str, Any]) -> int:
+    """The largest view side the recipe may choose: ``recipe.max_view``, and no larger than the largest image."""
+    long_side = np.maximum(dataset.widths, dataset.heights).astype(np.float64)
+    largest = int(math.ceil(long_side.max(initial=VIEW_MULTIPLE) / VIEW_MULTIPLE) * VIEW_MULTIPLE)
+    return min(int(cfg["max_view"]), max(largest, int(cfg["min_view"])))
+
+
 def choose_view_size(dataset: CocoDataset, cfg: dict[str, Any]) -> tuple[int, str]:
     """``data.image_size`` from the box sizes (module docstring) and its reason."""
     rows = ~dataset.iscrowd
     long_side = np.maximum(dataset.widths, dataset.heights).astype(np.float64)
-    largest = int(math.ceil(long_side.max(initial=VIEW_MULTIPLE) / VIEW_MULTIPLE) * VIEW_MULTIPLE)
-    low, high = int(cfg["min_view"]), min(int(cfg["max_view"]), max(largest, int(cfg["min_view"])))
+    low, high = int(cfg["min_view"]), _largest_view(dataset, cfg)
     target = float(cfg["min_object_px"])
     if not rows.any():
         return low, f"{low} px: no boxes to size the view by"
@@ -324,6 +332,15 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
             train["epochs"] = new
         else:
             break
+    wanted = int(data["image_size"])
+    while auto_view and not recipe.traded and int(data["image_size"]) + VIEW_MULTIPLE <= _largest_view(dataset, cfg):
+        data["image_size"] = int(data["image_size"]) + VIEW_MULTIPLE    # time left: more pixels for small objects
+        if detector_seconds() > detector_budget:
+            data["image_size"] = int(data["image_size"]) - VIEW_MULTIPLE
+            break
+    if int(data["image_size"]) > wanted:
+        recipe.reasons["data.image_size"] += (f"; enlarged to {data['image_size']} with the budget's time left "
+                                              f"(more pixels for the smallest objects)")
     if int(data["image_size"]) not in speeds:
         measure(int(data["image_size"]))
     det_s = detector_seconds()

@@ -83,3 +83,18 @@ def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:
     assert resolved["crossfit"]["epochs"] == config["recipe"]["min_crop_epochs"]
     assert recipe.notes and "budget" in recipe.notes[0]
     assert recipe.estimate["detector_step_s"] > 0
+
+
+def test_time_left_over_enlarges_the_view_within_the_budget() -> None:
+    # Large boxes need only the smallest view; with a generous budget the view grows (up to max_view), and with
+    # a budget that the wanted view already fills it stays where the boxes put it.
+    wh = np.random.default_rng(4).uniform(120, 200, (400, 2))
+    ds = _dataset(wh)
+    wanted, _ = choose_view_size(ds, load_config()["recipe"])
+    roomy = load_config(overrides={"recipe": {"budget_minutes": 600, "max_view": 320}})
+    resolved, recipe = fit_recipe(ds, roomy, measure=True)
+    assert wanted == 192 and resolved["data"]["image_size"] == 320
+    assert "enlarged to 320" in recipe.reasons["data.image_size"] and not recipe.traded
+    tight = load_config(overrides={"recipe": {"budget_minutes": 0.0001, "min_budget_minutes": 0}})
+    resolved, _ = fit_recipe(ds, tight, measure=True)
+    assert resolved["data"]["image_size"] == wanted

@@ -163,10 +163,12 @@ def scaled_epochs(count: int, reference: float, at: float, low: int, high: int) 
     return int(min(high, max(low, round(at * math.sqrt(reference / max(count, 1))))))
 
 
-def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int) -> tuple[float, float]:
-    """Seconds per training step of the detector (batch ``train.batch_size`` at ``image_size``) and of a crop
-    model (batch ``crossfit.batch_size``) on random data, timed over :data:`TIMED_STEPS` steps after one warm-up,
-    with the thread count training will use."""
+def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int,
+                         boxes_per_image: int = 1) -> tuple[float, float]:
+    """Seconds per training step of the detector (batch ``train.batch_size`` at ``image_size``, each image with
+    ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) and of a crop model
+    (batch ``crossfit.batch_size``) on random data, timed over :data:`TIMED_STEPS` steps after one warm-up, with
+    the thread count training will use."""
     from detdiff.crossfit.crop_model import CropModel, crop_loss
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
@@ -181,9 +183,11 @@ def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: i
         detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size)
         optimizer = torch.optim.AdamW(detector.parameters(), lr=1e-4)
         images = torch.rand(batch, 3, image_size, image_size).contiguous(memory_format=torch.channels_last)
-        side = image_size / 4
-        targets = [{"boxes": torch.tensor([[side, side, 2 * side, 2 * side]]), "labels": torch.zeros(1, dtype=torch.int64)}
-                   for _ in range(batch)]
+        count = max(1, int(boxes_per_image))
+        corner = torch.rand(batch, count, 2) * image_size * 0.8
+        extent = 8 + torch.rand(batch, count, 2) * image_size / 6
+        xyxy = torch.cat([corner, (corner + extent).clamp(max=image_size)], dim=2)
+        targets = [{"boxes": xyxy[b], "labels": torch.randint(0, max(1, num_classes), (count,))} for b in range(batch)]
 
         def detector_step() -> None:
             streams = compute_loss_streams(detector(images), detector.anchors, targets, config["loss"], config["log"])
@@ -299,10 +303,11 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     budget = budget_seconds(cfg, images)
     folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])
     speeds: dict[int, float] = {}                  # seconds per detector step, timed per view size
+    per_image = math.ceil(boxes / max(images, 1))
 
     def measure(size: int) -> None:
         speeds[size], recipe.estimate["crop_step_s"] = measure_step_seconds(
-            _with_anchors(config, dataset), dataset.num_classes, size)
+            _with_anchors(config, dataset), dataset.num_classes, size, boxes_per_image=per_image)
 
     def detector_seconds() -> float:
         size = int(data["image_size"])

@@ -344,8 +344,9 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
             data["image_size"] = int(data["image_size"]) - VIEW_MULTIPLE
             break
     if int(data["image_size"]) > wanted:
-        recipe.reasons["data.image_size"] += (f"; enlarged to {data['image_size']} with the budget's time left "
-                                              f"(more pixels for the smallest objects)")
+        first = recipe.reasons["data.image_size"].removeprefix(f"{wanted} px: ")
+        recipe.reasons["data.image_size"] = (f"{data['image_size']} px: enlarged from {wanted} px with the budget's "
+                                             f"time left, more pixels for the smallest objects; at {wanted} px {first}")
     if int(data["image_size"]) not in speeds:
         measure(int(data["image_size"]))
     det_s = detector_seconds()

@@ -94,7 +94,7 @@ def test_time_left_over_enlarges_the_view_within_the_budget() -> None:
     roomy = load_config(overrides={"recipe": {"budget_minutes": 600, "max_view": 320}})
     resolved, recipe = fit_recipe(ds, roomy, measure=True)
     assert wanted == 192 and resolved["data"]["image_size"] == 320
-    assert "enlarged to 320" in recipe.reasons["data.image_size"] and not recipe.traded
+    assert "enlarged from 192" in recipe.reasons["data.image_size"] and not recipe.traded
     tight = load_config(overrides={"recipe": {"budget_minutes": 0.0001, "min_budget_minutes": 0}})
     resolved, _ = fit_recipe(ds, tight, measure=True)
     assert resolved["data"]["image_size"] == wanted

@@ -33,6 +33,28 @@ from typing import Any
 
 import numpy as np
 
+class DecodeInterrupt:
+    """Stands in for ``image_cache._decode_task`` in a one-process cache build (``workers=1``): records the image
+    index of every task, and after ``stop_after`` images raises KeyboardInterrupt as a Ctrl-C would; after
+    :meth:`resume` it records without stopping (to see which images a resumed build decodes)."""
+
+    def __init__(self, monkeypatch: Any, stop_after: int) -> None:
+        from detdiff.data import image_cache
+
+        self.real, self.calls, self.stop_after = image_cache._decode_task, [], stop_after
+        monkeypatch.setattr(image_cache, "_decode_task", self)
+
+    def __call__(self, task: tuple) -> dict[str, Any]:
+        if self.stop_after is not None and len(self.calls) == self.stop_after:
+            raise KeyboardInterrupt
+        self.calls.append(task[0])
+        return self.real(task)
+
+    def resume(self) -> None:
+        self.calls.clear()
+        self.stop_after = None
+
+
 #: The stages of detdiff.stages, in the order an audit runs them.
 STAGES = ("check", "decode", "train", "evaluate", "crossfit", "summary", "analysis", "tables", "report")
 REPO = Path(__file__).resolve().parent.parent

@@ -35,7 +35,7 @@ from detdiff.data.image_cache import build_image_cache
 from detdiff.data.scenarios import generate_demo
 from detdiff.leftovers import TEMP_NAMES, find_leftovers, remove_leftovers
 from detdiff.stages import InsufficientSpaceError, disk_full_error, is_disk_full, stage
-from fault_injection import STAGES, Audit, check_launch, compare_runs, fault_spec
+from fault_injection import STAGES, Audit, DecodeInterrupt, check_launch, compare_runs, fault_spec
 
 SEED = 18
 linux_only = pytest.mark.skipif(not Path("/dev/full").exists(), reason="needs /dev/full (Linux)")
@@ -163,26 +163,17 @@ def test_interrupted_cache_build_decodes_only_the_rest_and_equals_a_clean_build(
     _, dataset = _demo_dataset(tmp_path)
     clean = build_image_cache(dataset, tmp_path / "clean", 64, max_pixels=10**8, progress=False, workers=1,
                               with_crops=True)
-    real, calls = image_cache._decode_task, []
-
-    def stop_after_ten(task):
-        if len(calls) == 10:
-            raise KeyboardInterrupt
-        calls.append(task[0])
-        return real(task)
-
-    monkeypatch.setattr(image_cache, "_decode_task", stop_after_ten)
+    decode = DecodeInterrupt(monkeypatch, stop_after=10)
     monkeypatch.setattr(image_cache, "PROGRESS_EVERY_S", 3600.0)       # saved on the way out, not by time
     with pytest.raises(KeyboardInterrupt):
         build_image_cache(dataset, tmp_path / "cache", 64, max_pixels=10**8, progress=False, workers=1,
                           with_crops=True)
     assert sorted(p.name for p in (tmp_path / "cache").iterdir()) == [
         "crops.u8.partial", "decode-progress.npz", "images.u8.partial"]
-    calls.clear()
-    monkeypatch.setattr(image_cache, "_decode_task", lambda task: calls.append(task[0]) or real(task))
+    decode.resume()
     resumed = build_image_cache(dataset, tmp_path / "cache", 64, max_pixels=10**8, progress=False, workers=1,
                                 with_crops=True)
-    assert calls == list(range(10, dataset.num_images))
+    assert decode.calls == list(range(10, dataset.num_images))
     for name in ("images.u8", "crops.u8", "problems.json", "fingerprint.json"):
         assert (tmp_path / "cache" / name).read_bytes() == (tmp_path / "clean" / name).read_bytes(), name
     assert np.array_equal(resumed.pixel, clean.pixel, equal_nan=True) and np.array_equal(resumed.scale, clean.scale)

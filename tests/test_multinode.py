@@ -20,6 +20,7 @@ from detdiff.data.coco import build_dataset, load_saved_dataset, read_coco_json
 from detdiff.data.image_cache import CROPS_FILE, IMAGES_FILE, build_image_cache
 from detdiff.data.scenarios import generate_demo
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog
+from fault_injection import DecodeInterrupt
 
 CACHE_FILES = (IMAGES_FILE, CROPS_FILE, "problems.json", "fingerprint.json")
 
@@ -123,30 +124,19 @@ def test_two_machines_give_the_results_of_one_machine_with_two_processes(tmp_pat
 
 
 def test_a_killed_rank_goes_on_with_its_shard_and_the_join_equals_one_process(tmp_path, monkeypatch):
-    from detdiff.data import image_cache
-
     paths = _demo_with_a_broken_image(tmp_path)
     ds = build_dataset(read_coco_json(paths.annotations), images_dir=paths.images_dir)
     options = dict(max_pixels=10**8, with_crops=True, progress=False, workers=1)
     single = build_image_cache(ds, tmp_path / "single", 64, **options)
     bounds = shard_bounds(ds, 2, 64)
-    real, calls = image_cache._decode_task, []
-
-    def stop_after_four(task):
-        if len(calls) == 4:
-            raise KeyboardInterrupt
-        calls.append(task[0])
-        return real(task)
-
-    monkeypatch.setattr(image_cache, "_decode_task", stop_after_four)
+    decode = DecodeInterrupt(monkeypatch, stop_after=4)
     with pytest.raises(KeyboardInterrupt):                 # rank 1 is killed part-way through its shard
         build_cache_shard(ds, tmp_path / "joined", 64, 1, 2, **options)
     shard = tmp_path / "joined" / SHARDS_DIR / "001-of-002"
     assert sorted(p.name for p in shard.iterdir()) == ["crops.u8.partial", "decode-progress.npz", "images.u8.partial"]
-    calls.clear()
-    monkeypatch.setattr(image_cache, "_decode_task", lambda task: calls.append(task[0]) or real(task))
+    decode.resume()
     build_cache_shard(ds, tmp_path / "joined", 64, 1, 2, **options)
-    assert calls == list(range(4, int(bounds[2] - bounds[1])))          # only the rest of its shard
+    assert decode.calls == list(range(4, int(bounds[2] - bounds[1])))          # only the rest of its shard
     build_cache_shard(ds, tmp_path / "joined", 64, 0, 2, **options)
     options.pop("progress"), options.pop("workers")
     joined = merge_cache_shards(ds, tmp_path / "joined", 64, 2, **options)

@@ -13,6 +13,7 @@ from PIL import Image
 from detdiff.crossfit.crops import CONTEXT, STORE
 from detdiff.data.coco import build_dataset
 from detdiff.data.image_cache import MIN_CROP_SIDE, build_image_cache, draft_reduction
+from fault_injection import DecodeInterrupt
 
 VIEW = 320
 
@@ -136,8 +137,6 @@ def test_exif_rotated_large_jpeg_is_reduced_in_its_displayed_orientation(tmp_pat
 
 
 def test_interrupted_reduced_build_resumes_with_the_reductions_of_a_clean_build(tmp_path, monkeypatch):
-    from detdiff.data import image_cache
-
     records, boxes = [], {}
     for i in range(6):                      # 1024x768 for a 64 px view: 1/8 without boxes, 1/2 with a 40 px box
         Image.fromarray(_photo(1024, 768, [(100, 100, 300, 40)] if i % 2 else [])).save(tmp_path / f"{i}.jpg",
@@ -149,18 +148,10 @@ def test_interrupted_reduced_build_resumes_with_the_reductions_of_a_clean_build(
     kwargs = dict(max_pixels=10**8, progress=False, workers=1, with_crops=True)
     clean = build_image_cache(ds, tmp_path / "clean", 64, **kwargs)
     assert _reduction(clean).tolist() == [8, 2] * 3
-    real, calls = image_cache._decode_task, []
-
-    def stop_after_three(task):
-        if len(calls) == 3:
-            raise KeyboardInterrupt
-        calls.append(task[0])
-        return real(task)
-
-    monkeypatch.setattr(image_cache, "_decode_task", stop_after_three)
+    decode = DecodeInterrupt(monkeypatch, stop_after=3)
     with pytest.raises(KeyboardInterrupt):
         build_image_cache(ds, tmp_path / "cache", 64, **kwargs)
-    monkeypatch.setattr(image_cache, "_decode_task", real)
+    decode.resume()
     resumed = build_image_cache(ds, tmp_path / "cache", 64, **kwargs)
     assert _reduction(resumed).tolist() == _reduction(clean).tolist()
     for name in ("images.u8", "crops.u8", "problems.json", "fingerprint.json"):

@@ -224,13 +224,20 @@ def _build_cache(dataset: CocoDataset, rundir: Path, config: dict, dist, progres
     options = {"max_pixels": int(config["data"]["max_pixels"]),
                "pixel_stats": bool(config["analysis"]["pixel_descriptors"]),
                "with_crops": bool(config["crossfit"]["enabled"]),
-               "reduced_decode": bool(config["data"]["reduced_decode"])}
+               "reduced_decode": bool(config["data"]["reduced_decode"]),
+               "tiles": tile_options(config)}
     needed = (cache_bytes(dataset.num_images, size)
               + (crop_bytes(dataset.num_annotations) if options["with_crops"] else 0))
     with stage("decode", rundir, "cache", needed):
         if not dist.distributed:
             return build_image_cache(dataset, cache_dir, size, progress=progress, **options)
         return _build_cache_shards(dataset, cache_dir, size, options, dist, progress)
+
+
+def tile_options(config: dict) -> dict[str, float]:
+    """The image cache's tile settings from a resolved config (``data.tile_scale``: 0 or null = no tiles)."""
+    return {"scale": float(config["data"].get("tile_scale") or 0.0),
+            "min_object_px": float(config["recipe"]["min_object_px"])}
 
 
 def _build_cache_shards(dataset: CocoDataset, cache_dir: Path, size: int, options: dict, dist, progress: bool):

@@ -28,6 +28,12 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
   ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the
   smallest objects. The detector is timed at the wanted view and at the chosen one; sizes between are
   estimated in proportion to the pixels. Every trade is said.
+* ``data.tile_scale``: boxes still under ``recipe.min_object_px`` in the view get tiles of their image enlarged
+  until they reach it (:mod:`detdiff.data.views`), at most ``data.tile_scale`` tile px per original px. After the
+  view is fitted, the largest scale of ``recipe.max_tile_scale * 0.75^k`` whose tiles fit the detector's share of
+  the budget is chosen; tiles come before epochs (which shrink for them, down to ``recipe.min_epochs``): an object
+  seen at a resolution where it can be judged in fewer epochs is worth more than one seen too small in more. With
+  tiles the view does not grow. What stays too small is said, with the flag that buys resolution.
 """
 
 from __future__ import annotations
@@ -42,6 +48,7 @@ import numpy as np
 import torch
 
 from detdiff.data.coco import CocoDataset
+from detdiff.data.views import logged_view_sides, plan_tiles, small_boxes
 
 AUTO = "auto"
 VIEW_MULTIPLE = 32
@@ -240,6 +247,7 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
     auto_view = _is_auto(config["data"]["image_size"])
     auto_epochs = _is_auto(config["train"]["epochs"])
     auto_crop = _is_auto(config["crossfit"]["epochs"])
+    auto_tiles = _is_auto(config["data"].get("tile_scale"))
     if auto_view:
         size, reason = choose_view_size(dataset, cfg)
         config["data"]["image_size"] = size
@@ -256,17 +264,16 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
                                              f"sqrt(4000 / {boxes} boxes), within {cfg['min_crop_epochs']}-"
                                              f"{cfg['max_crop_epochs']}")
     if measure and dataset.num_classes and boxes:
-        _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop)
+        _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop, auto_tiles)
+    elif auto_tiles:
+        config["data"]["tile_scale"] = float(cfg["max_tile_scale"])
+        recipe.reasons["data.tile_scale"] = f"{cfg['max_tile_scale']}: recipe.max_tile_scale (no time budget fitted)"
     config = _with_anchors(config, dataset, recipe)
     size = int(config["data"]["image_size"])
     _restate_traded(recipe, config, dataset)
-    small = float((box_view_sides(dataset, size) < float(cfg["min_object_px"])).mean()) if boxes else 0.0
-    if small > 0.05:
-        recipe.notes.append(f"{small:.0%} of the boxes are under {cfg['min_object_px']} px across in the {size} px "
-                            f"view, too small for the detector to judge (their class and box are still judged by "
-                            f"the crop models at full resolution); --image-size buys resolution at about "
-                            f"(new / {size})^2 the detector time")
-    for key in ("data.image_size", "train.epochs", "crossfit.epochs", "model.anchor_shapes"):
+    if boxes:
+        _say_small_objects(dataset, config, recipe)
+    for key in ("data.image_size", "data.tile_scale", "train.epochs", "crossfit.epochs", "model.anchor_shapes"):
         section, name = key.split(".")
         recipe.settings[key] = config[section][name]
         recipe.reasons.setdefault(key, "given in the config or on the command line")
@@ -296,14 +303,41 @@ def budget_seconds(cfg: dict[str, Any], images: int) -> float:
     return 60.0 * float(cfg["budget_minutes"])
 
 
+def tile_count(dataset: CocoDataset, image_size: int, cap: float, min_object_px: float) -> int:
+    """How many tiles :func:`detdiff.data.views.plan_tiles` cuts at tile scales up to ``cap``."""
+    return plan_tiles(dataset, image_size, cap, min_object_px)[0].num_tiles if cap > 0 else 0
+
+
+def _say_small_objects(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe) -> None:
+    """A note when more than 5% of the boxes stay under ``recipe.min_object_px`` in the view that logs them, with the
+    share and the flags that buy resolution."""
+    cfg, size = config["recipe"], int(config["data"]["image_size"])
+    target = float(cfg["min_object_px"])
+    grid, owner = plan_tiles(dataset, size, float(config["data"].get("tile_scale") or 0.0), target)
+    small = float((logged_view_sides(dataset, size, grid, owner) < target).mean())
+    if small <= 0.05:
+        return
+    where = f"the {size} px view" + (f" or its {grid.num_tiles} tiles" if grid.num_tiles else "")
+    recipe.notes.append(f"{small:.0%} of the boxes are under {target:g} px across in {where}, too small for the "
+                        f"detector to judge (their class and box are still judged by the crop models at full "
+                        f"resolution); --budget MINUTES buys tiles at a larger scale (up to recipe.max_tile_scale "
+                        f"{cfg['max_tile_scale']}), --image-size a larger view at about (new / {size})^2 the "
+                        f"detector time")
+
+
 def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, images: int, boxes: int,
-                auto_view: bool, auto_epochs: bool, auto_crop: bool) -> None:
-    """Shrink the ``auto`` settings until the estimated training fits the budget (module docstring)."""
+                auto_view: bool, auto_epochs: bool, auto_crop: bool, auto_tiles: bool) -> None:
+    """Shrink the ``auto`` settings until the estimated training fits the budget, then spend what is left on tiles or
+    a larger view (module docstring)."""
     cfg, train, crossfit, data = config["recipe"], config["train"], config["crossfit"], config["data"]
     budget = budget_seconds(cfg, images)
     folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])
     speeds: dict[int, float] = {}                  # seconds per detector step, timed per view size
     per_image = math.ceil(boxes / max(images, 1))
+    target = float(cfg["min_object_px"])
+    if auto_tiles:
+        data["tile_scale"] = 0.0                   # fitted below, once the view is
+    views = {"count": images + tile_count(dataset, int(data["image_size"]), float(data["tile_scale"] or 0), target)}
 
     def measure(size: int) -> None:
         speeds[size], recipe.estimate["crop_step_s"] = measure_step_seconds(
@@ -312,7 +346,7 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     def detector_seconds() -> float:
         size = int(data["image_size"])
         timed = min(speeds, key=lambda s: abs(s - size))
-        return int(train["epochs"]) * math.ceil(images / batch) * speeds[timed] * (size / timed) ** 2
+        return int(train["epochs"]) * math.ceil(views["count"] / batch) * speeds[timed] * (size / timed) ** 2
 
     measure(int(data["image_size"]))
     crop_s = 0.0
@@ -338,7 +372,10 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
         else:
             break
     wanted = int(data["image_size"])
-    while auto_view and not recipe.traded and int(data["image_size"]) + VIEW_MULTIPLE <= _largest_view(dataset, cfg):
+    if auto_tiles:
+        _fit_tiles(dataset, config, recipe, images, detector_budget, detector_seconds, views, auto_epochs)
+    while (auto_view and not recipe.traded and not float(data["tile_scale"] or 0)
+           and int(data["image_size"]) + VIEW_MULTIPLE <= _largest_view(dataset, cfg)):
         data["image_size"] = int(data["image_size"]) + VIEW_MULTIPLE    # time left: more pixels for small objects
         if detector_seconds() > detector_budget:
             data["image_size"] = int(data["image_size"]) - VIEW_MULTIPLE
@@ -350,12 +387,55 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     if int(data["image_size"]) not in speeds:
         measure(int(data["image_size"]))
     det_s = detector_seconds()
-    recipe.estimate.update({"detector_step_s": round(speeds[int(data["image_size"])], 4),
+    recipe.estimate.update({"views_per_epoch": int(views["count"]),
+                            "detector_step_s": round(speeds[int(data["image_size"])], 4),
                             "detector_training_s": round(det_s, 1), "crop_models_s": round(crop_s, 1),
                             "budget_s": round(budget, 1)})
     if det_s + crop_s > budget * 1.05:
         recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over the budget of "
                             f"{budget / 60:.1f} min, with nothing left to trade; raise --budget or set smaller values")
+
+
+def _fit_tiles(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, images: int, detector_budget: float,
+               detector_seconds, views: dict[str, int], auto_epochs: bool) -> None:
+    """``data.tile_scale``: the largest of ``recipe.max_tile_scale * 0.75^k`` whose tiles fit ``detector_budget``
+    (epochs shrinking for them down to ``recipe.min_epochs``), or 0 (module docstring)."""
+    cfg, train, data = config["recipe"], config["train"], config["data"]
+    size, target = int(data["image_size"]), float(cfg["min_object_px"])
+    small = small_boxes(dataset, size, target)
+    if not small.any():
+        recipe.reasons["data.tile_scale"] = f"0: no box is under {target:g} px across in the {size} px view"
+        return
+    epochs, floor = int(train["epochs"]), min(int(train["epochs"]), int(cfg["min_epochs"])) if auto_epochs else None
+    for k in range(12):
+        cap = round(float(cfg["max_tile_scale"]) * 0.75 ** k, 3)
+        tiles = tile_count(dataset, size, cap, target)
+        if tiles == 0:
+            break
+        views["count"] = images + tiles
+        fits = detector_seconds() <= detector_budget
+        while not fits and floor is not None and int(train["epochs"]) > floor:
+            train["epochs"] = max(floor, int(math.floor(int(train["epochs"]) * 0.9)))
+            fits = detector_seconds() <= detector_budget
+        if fits:
+            data["tile_scale"] = cap
+            grid, owner = plan_tiles(dataset, size, cap, target)
+            judged = float((logged_view_sides(dataset, size, grid, owner) >= target).mean())
+            whole = float((box_view_sides(dataset, size) >= target).mean())
+            recipe.reasons["data.tile_scale"] = (
+                f"{cap:g}: {tiles} tiles of {size} px for {len(np.unique(grid.image))} images with boxes under "
+                f"{target:g} px in the view, enlarged up to {cap:g}x; {judged:.0%} of the boxes are at least {target:g} "
+                f"px across in the view that logs them ({whole:.0%} in whole views alone)")
+            if cap < float(cfg["max_tile_scale"]):
+                recipe.traded.append(f"data.tile_scale {cfg['max_tile_scale']} -> {cap:g} for the budget")
+            if int(train["epochs"]) < epochs:
+                recipe.traded.append(f"train.epochs {epochs} -> {train['epochs']} for the tiles")
+            return
+        train["epochs"] = epochs
+    views["count"] = images
+    recipe.reasons["data.tile_scale"] = (f"0: tiles for the boxes under {target:g} px in the view do not fit the "
+                                         f"detector's share of the budget even at the smallest tile scale tried")
+    recipe.traded.append(f"data.tile_scale {cfg['max_tile_scale']} -> 0 for the budget")
 
 
 def _restate_traded(recipe: Recipe, config: dict[str, Any], dataset: CocoDataset) -> None:

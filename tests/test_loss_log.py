@@ -1,4 +1,4 @@
-"""The training log: epochs commit atomically, rank shards merge to each image exactly once."""
+"""The training log: epochs commit atomically, rank shards merge, the views of an image add up."""
 
 from __future__ import annotations
 
@@ -64,15 +64,22 @@ def test_rank_merge_covers_each_image_once(tmp_path) -> None:
     assert len(log.unmatched(0)["score"]) == 4
 
 
-def test_overlapping_shards_are_refused(tmp_path) -> None:
-    for rank in range(2):
-        w = LossLogWriter(tmp_path, 2, 0, rank=rank)
+def test_views_of_one_image_add_up_within_a_batch_across_batches_and_across_ranks(tmp_path) -> None:
+    # An image with tiles is trained in several views (detdiff.data.views): its image fields are their sums, whether
+    # the views share a batch, come in later batches, or went to other ranks; images not trained stay unfilled.
+    for rank, views in enumerate([[np.array([0, 0]), np.array([0])], [np.array([0, 1])]]):
+        w = LossLogWriter(tmp_path, 3, 0, rank=rank)
         w.reset(0)
-        image, objects, unmatched = _batch(np.array([0]), np.array([], dtype=int), 1.0)
-        w.process(np.array([0]), image, np.array([], dtype=int), objects, unmatched)
+        for imgs in views:
+            image, objects, unmatched = _batch(imgs, np.array([], dtype=int), float(rank + 1))
+            w.process(imgs, image, np.array([], dtype=int), objects, unmatched)
         w.finalize()
-    with pytest.raises(RuntimeError, match="more than one process"):
-        merge_rank_epochs(tmp_path, 0, world_size=2)
+    merge_rank_epochs(tmp_path, 0, world_size=2)
+    log = LossLog.open(tmp_path)
+    loc = log.image_field("loc_sum")[0]
+    assert loc[:2].tolist() == [3 * 1.0 + 2.0, 2.0] and np.isnan(loc[2])
+    assert log.image_field("num_pos")[0].tolist() == [5, 2, -1]
+    assert log.covered()[0].tolist() == [True, True, False]
 
 
 def test_field_missing_from_an_older_log_is_named(tmp_path) -> None:

@@ -17,12 +17,13 @@ import pytest
 from detdiff.config import load_saved_config
 from detdiff.data.cache_shards import SHARDS_DIR, build_cache_shard, merge_cache_shards, shard_bounds
 from detdiff.data.coco import build_dataset, load_saved_dataset, read_coco_json
-from detdiff.data.image_cache import CROPS_FILE, IMAGES_FILE, build_image_cache
+from detdiff.data.image_cache import CROPS_FILE, IMAGES_FILE, TILES_FILE, build_image_cache
 from detdiff.data.scenarios import generate_demo
+from detdiff.pipeline import tile_options
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog
 from fault_injection import DecodeInterrupt
 
-CACHE_FILES = (IMAGES_FILE, CROPS_FILE, "problems.json", "fingerprint.json")
+CACHE_FILES = (IMAGES_FILE, CROPS_FILE, TILES_FILE, "problems.json", "fingerprint.json")
 
 
 def _demo_with_a_broken_image(root: Path):
@@ -37,7 +38,9 @@ def _demo_with_a_broken_image(root: Path):
 
 def _assert_same_cache(a: Path, b: Path) -> None:
     for name in CACHE_FILES:
-        assert (a / name).read_bytes() == (b / name).read_bytes(), name
+        assert (a / name).is_file() == (b / name).is_file(), name
+        if (a / name).is_file():
+            assert (a / name).read_bytes() == (b / name).read_bytes(), name
     with np.load(a / "meta.npz") as x, np.load(b / "meta.npz") as y:
         assert sorted(x.files) == sorted(y.files)
         assert all(np.array_equal(x[k], y[k], equal_nan=True) for k in x.files)
@@ -59,8 +62,10 @@ def test_shard_bounds_are_contiguous_and_balanced_on_decoded_pixels():
 def test_shards_joined_equal_the_cache_of_one_process(tmp_path):
     paths = _demo_with_a_broken_image(tmp_path)
     ds = build_dataset(read_coco_json(paths.annotations), images_dir=paths.images_dir)
-    options = dict(max_pixels=10**8, with_crops=True, progress=False, workers=1)
+    options = dict(max_pixels=10**8, with_crops=True, progress=False, workers=1,
+                   tiles={"scale": 2.0, "min_object_px": 16})        # 128 px images in a 64 px view: tiles too
     single = build_image_cache(ds, tmp_path / "single", 64, **options)
+    assert single.num_tiles > 0
     for rank in range(3):                                  # what three ranks do, one after the other
         build_cache_shard(ds, tmp_path / "joined", 64, rank, 3, **options)
     options.pop("progress"), options.pop("workers")
@@ -111,7 +116,7 @@ def test_two_machines_give_the_results_of_one_machine_with_two_processes(tmp_pat
     config = load_saved_config(nodes_run / "config.yaml")
     single = build_image_cache(load_saved_dataset(nodes_run / "dataset.npz"), tmp_path / "single", 64,
                                max_pixels=int(config["data"]["max_pixels"]), with_crops=True, progress=False,
-                               workers=1)
+                               workers=1, tiles=tile_options(config))
     _assert_same_cache(nodes_run / "cache", single.cache_dir)
     a, b = LossLog.open(nodes_run / "log"), LossLog.open(one_run / "log")
     assert a.epochs == b.epochs == [0, 1]
@@ -126,14 +131,17 @@ def test_two_machines_give_the_results_of_one_machine_with_two_processes(tmp_pat
 def test_a_killed_rank_goes_on_with_its_shard_and_the_join_equals_one_process(tmp_path, monkeypatch):
     paths = _demo_with_a_broken_image(tmp_path)
     ds = build_dataset(read_coco_json(paths.annotations), images_dir=paths.images_dir)
-    options = dict(max_pixels=10**8, with_crops=True, progress=False, workers=1)
+    options = dict(max_pixels=10**8, with_crops=True, progress=False, workers=1,
+                   tiles={"scale": 2.0, "min_object_px": 16})        # 128 px images in a 64 px view: tiles too
     single = build_image_cache(ds, tmp_path / "single", 64, **options)
+    assert single.num_tiles > 0
     bounds = shard_bounds(ds, 2, 64)
     decode = DecodeInterrupt(monkeypatch, stop_after=4)
     with pytest.raises(KeyboardInterrupt):                 # rank 1 is killed part-way through its shard
         build_cache_shard(ds, tmp_path / "joined", 64, 1, 2, **options)
     shard = tmp_path / "joined" / SHARDS_DIR / "001-of-002"
-    assert sorted(p.name for p in shard.iterdir()) == ["crops.u8.partial", "decode-progress.npz", "images.u8.partial"]
+    assert sorted(p.name for p in shard.iterdir()) == ["crops.u8.partial", "decode-progress.npz", "images.u8.partial",
+                                                      "tiles.u8.partial"]
     decode.resume()
     build_cache_shard(ds, tmp_path / "joined", 64, 1, 2, **options)
     assert decode.calls == list(range(4, int(bounds[2] - bounds[1])))          # only the rest of its shard

@@ -76,8 +76,9 @@ def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:
     ds = _dataset(wh)
     config = load_config(overrides={"recipe": {"budget_minutes": 0.0001, "max_view": 256, "min_budget_minutes": 0}})
     resolved, recipe = fit_recipe(ds, config, measure=True)
-    keys = [t.split()[0] for t in recipe.traded]     # crop models first, then the detector's view, then its epochs
-    assert keys == ["crossfit.epochs", "data.image_size", "train.epochs"], recipe.traded
+    keys = [t.split()[0] for t in recipe.traded]     # crop models first, then the detector's view, its epochs, tiles
+    assert keys == ["crossfit.epochs", "data.image_size", "train.epochs", "data.tile_scale"], recipe.traded
+    assert resolved["data"]["tile_scale"] == 0
     assert resolved["data"]["image_size"] == config["recipe"]["min_view"]
     assert resolved["train"]["epochs"] == config["recipe"]["min_epochs"]
     assert resolved["crossfit"]["epochs"] == config["recipe"]["min_crop_epochs"]
@@ -98,3 +99,22 @@ def test_time_left_over_enlarges_the_view_within_the_budget() -> None:
     tight = load_config(overrides={"recipe": {"budget_minutes": 0.0001, "min_budget_minutes": 0}})
     resolved, _ = fit_recipe(ds, tight, measure=True)
     assert resolved["data"]["image_size"] == wanted
+
+
+def test_tiles_for_small_boxes_fit_the_budget_before_epochs() -> None:
+    # 12 px boxes in 4000 x 3000 photos are about 1 px in any view the recipe allows: with time to spare the recipe
+    # cuts tiles at the largest scale that fits (8 px boxes reach 16 px at 2x), trading epochs for them first.
+    wh = np.random.default_rng(5).uniform(10, 14, (400, 2))
+    ds = _dataset(wh, size=(4000, 3000), per_image=20)
+    roomy = load_config(overrides={"recipe": {"budget_minutes": 600}})
+    resolved, recipe = fit_recipe(ds, roomy, measure=True)
+    assert resolved["data"]["tile_scale"] == roomy["recipe"]["max_tile_scale"]
+    assert "tiles of" in recipe.reasons["data.tile_scale"] and recipe.estimate["views_per_epoch"] > ds.num_images
+    assert not any(n.startswith("9") or "too small" in n for n in recipe.notes), recipe.notes
+    tight = load_config(overrides={"recipe": {"budget_minutes": 0.5, "min_budget_minutes": 0}})
+    resolved, recipe = fit_recipe(ds, tight, measure=True)
+    cap = resolved["data"]["tile_scale"]
+    assert cap < roomy["recipe"]["max_tile_scale"]
+    assert any(t.startswith("data.tile_scale") for t in recipe.traded), recipe.traded
+    if cap == 0:
+        assert any("too small" in n and "--budget" in n for n in recipe.notes), recipe.notes

@@ -28,9 +28,10 @@ import numpy as np
 
 from detdiff.crossfit.crops import CROPS_FILE, crop_bytes
 from detdiff.data.coco import CocoDataset
-from detdiff.data.image_cache import (FINGERPRINT_FILE, IMAGES_FILE, META_FILE, PROBLEMS_FILE, ImageCache,
-                                      _clear_for_build, _fingerprint, _publish, build_image_cache, cache_bytes,
-                                      draft_reductions)
+from detdiff.data.image_cache import (FINGERPRINT_FILE, IMAGES_FILE, META_FILE, PROBLEMS_FILE, TILES_FILE,
+                                      ImageCache, _clear_for_build, _fingerprint, _publish, _tile_options,
+                                      build_image_cache, cache_bytes, draft_reductions, tile_meta)
+from detdiff.data.views import plan_tiles
 
 SHARDS_DIR = "shards"
 #: Decode work of one image besides decoding its pixels (crops, view, descriptors, writing), in decoded pixels.
@@ -81,7 +82,7 @@ def build_cache_shard(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     folder = shard_dir(cache_dir, rank, world_size)
     part = dataset.subset_images(np.arange(bounds[rank], bounds[rank + 1]))
     build_image_cache(part, folder, image_size, **options)
-    for name in (IMAGES_FILE, CROPS_FILE, META_FILE, PROBLEMS_FILE, FINGERPRINT_FILE):
+    for name in (IMAGES_FILE, CROPS_FILE, TILES_FILE, META_FILE, PROBLEMS_FILE, FINGERPRINT_FILE):
         if (folder / name).is_file():
             _fsync(folder / name)
     _fsync(folder)
@@ -108,7 +109,7 @@ def _append(source: Path, target) -> None:
 
 def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: int, world_size: int, *,
                        max_pixels: int, pixel_stats: bool = True, with_crops: bool = False,
-                       reduced_decode: bool = True) -> ImageCache:
+                       reduced_decode: bool = True, tiles: dict[str, float] | None = None) -> ImageCache:
     """Join the ``world_size`` complete shards of ``dataset`` into ``cache_dir`` and open it; the shards are removed.
 
     The result equals what :func:`build_image_cache` writes for the whole dataset with the same settings
@@ -122,7 +123,7 @@ def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: 
         if shard.num_images != bounds[k + 1] - bounds[k] or shard.image_size != image_size:
             raise ValueError(f"{folders[k]}: holds {shard.num_images} images of {shard.image_size} px, expected "
                              f"{bounds[k + 1] - bounds[k]} of {image_size}; delete {cache_dir} and run again")
-    largest = max(cache_bytes(s.num_images, image_size) + (s.crops.nbytes if s.crops is not None else 0)
+    largest = max(cache_bytes(s.num_images + s.num_tiles, image_size) + (s.crops.nbytes if s.crops is not None else 0)
                   for s in shards)
     _clear_for_build(cache_dir, largest)
     metas = []
@@ -133,28 +134,37 @@ def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: 
     del shards                                            # their memmaps are about to be deleted
     images_tmp = cache_dir / f"{IMAGES_FILE}.tmp-{os.getpid()}"
     crops_tmp = cache_dir / f"{CROPS_FILE}.tmp-{os.getpid()}" if with_crops else None
+    tile_options = _tile_options(tiles)
+    grid, tile_owner = plan_tiles(dataset, image_size, tile_options["scale"], tile_options["min_object_px"])
+    tiles_tmp = cache_dir / f"{TILES_FILE}.tmp-{os.getpid()}" if grid.num_tiles else None
     try:
-        for name, tmp in ((IMAGES_FILE, images_tmp), (CROPS_FILE, crops_tmp)):
+        for name, tmp in ((IMAGES_FILE, images_tmp), (CROPS_FILE, crops_tmp), (TILES_FILE, tiles_tmp)):
             if tmp is None:
                 continue
             with open(tmp, "wb", buffering=0) as out:          # unbuffered: copy_file_range writes beside it
                 for folder in folders:
                     (folder / FINGERPRINT_FILE).unlink(missing_ok=True)   # the shard is no longer complete
-                    _append(folder / name, out)
-                    (folder / name).unlink()
+                    if (folder / name).is_file():                 # a shard whose images need no tile has none
+                        _append(folder / name, out)
+                        (folder / name).unlink()
         if crops_tmp is not None and crops_tmp.stat().st_size != crop_bytes(dataset.num_annotations):
             raise ValueError(f"{cache_dir}: the shards hold {crops_tmp.stat().st_size} bytes of crops, expected "
                              f"{crop_bytes(dataset.num_annotations)}; delete {cache_dir} and run again")
+        if tiles_tmp is not None and tiles_tmp.stat().st_size != cache_bytes(grid.num_tiles, image_size):
+            raise ValueError(f"{cache_dir}: the shards hold {tiles_tmp.stat().st_size} bytes of tiles, expected "
+                             f"{cache_bytes(grid.num_tiles, image_size)}; delete {cache_dir} and run again")
     except BaseException:
-        images_tmp.unlink(missing_ok=True)
-        if crops_tmp is not None:
-            crops_tmp.unlink(missing_ok=True)
+        for tmp in (images_tmp, crops_tmp, tiles_tmp):
+            if tmp is not None:
+                tmp.unlink(missing_ok=True)
         raise
     joined = {key: np.concatenate([m[key] for m in metas]) for key in ("scale", "usable", "pixel", "reduction")}
     meta = {"scale": joined["scale"], "usable": joined["usable"], "pixel": joined["pixel"],
             "image_ids": dataset.image_ids, "image_size": np.int64(image_size), "reduction": joined["reduction"]}
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
-    maps = {IMAGES_FILE: images_tmp} | ({CROPS_FILE: crops_tmp} if crops_tmp is not None else {})
+    meta |= tile_meta(grid, tile_owner)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode, tiles)
+    maps = ({IMAGES_FILE: images_tmp} | ({CROPS_FILE: crops_tmp} if crops_tmp is not None else {})
+            | ({TILES_FILE: tiles_tmp} if tiles_tmp is not None else {}))
     cache = _publish(cache_dir, maps, meta, problems, fingerprint)
     shutil.rmtree(cache_dir / SHARDS_DIR, ignore_errors=True)
     return cache

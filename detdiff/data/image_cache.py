@@ -11,7 +11,11 @@ Files in ``cache_dir``::
     images.u8        uint8 [I, S, S, 3] RGB, raw memmap (shape in meta.npz)
     meta.npz         scale float64 [I], usable bool [I], pixel float32 [I, 4] (PIXEL_DESCRIPTOR_NAMES,
                      NaN where unusable), image_ids int64 [I], image_size int, reduction uint8 [I] (JPEG
-                     decode reduction, below; 1 = full resolution or not decoded)
+                     decode reduction, below; 1 = full resolution or not decoded), tile_image int64 [T],
+                     tile_origin float64 [T, 2], tile_scale float64 [T], tile_owner int64 [A] (the tiles,
+                     :mod:`detdiff.data.views`)
+    tiles.u8         uint8 [T, S, S, 3] the tiles where small boxes need them (cut from the same decoded pixels as
+                     the view); absent when there are none
     problems.json    [{index, image_id, file_name, reason, usable, level}]: level "error" = unusable
                      (not trained on), "warning" = usable with a note (e.g. size differs from the file)
     crops.u8         uint8 [A, 64, 64, 3] one crop per annotation at the original resolution, for the
@@ -67,11 +71,13 @@ from detdiff.atomic import allocate, write_text_atomic
 from detdiff.crossfit.crops import CONTEXT, CROPS_FILE, STORE, crop_bytes, object_crops
 from detdiff.data.coco import CocoDataset, UnsafeImagePath, resolve_image_path
 from detdiff.data.pixel_descriptors import PIXEL_DESCRIPTOR_NAMES, pixel_descriptors
+from detdiff.data.views import TileGrid, plan_tiles, tile_pixels
 from detdiff.stages import DISK_FULL_ERRNOS, InsufficientSpaceError  # noqa: F401  (re-exported)
 
 PAD_VALUE = 114
-CACHE_FORMAT_VERSION = 2
+CACHE_FORMAT_VERSION = 3
 IMAGES_FILE = "images.u8"
+TILES_FILE = "tiles.u8"
 META_FILE = "meta.npz"
 PROBLEMS_FILE = "problems.json"
 FINGERPRINT_FILE = "fingerprint.json"
@@ -132,10 +138,32 @@ class ImageCache:
     problems: list[dict[str, Any]]
     image_size: int
     crops: np.ndarray | None = None   # uint8 [A, STORE, STORE, 3] per annotation row, or None (built without)
+    tiles: np.ndarray | None = None   # uint8 [T, S, S, 3] tiles of small boxes (detdiff.data.views), or None
+    grid: TileGrid | None = None      # where each tile lies in its image
+    tile_owner: np.ndarray | None = None   # int64 [A]: the tile that logs each annotation, -1 = its whole view
 
     @property
     def num_images(self) -> int:
         return int(self.images.shape[0])
+
+    @property
+    def num_tiles(self) -> int:
+        return 0 if self.grid is None else self.grid.num_tiles
+
+    def view_pixels(self, views: np.ndarray) -> np.ndarray:
+        """``uint8 [n, S, S, 3]`` pixels of ``views`` (``v < I``: whole view of image ``v``; else tile ``v - I``)."""
+        views = np.asarray(views, np.int64)
+        whole = views < self.num_images
+        if whole.all():
+            return np.ascontiguousarray(self.images[views])
+        out = np.empty((len(views), self.image_size, self.image_size, 3), dtype=np.uint8)
+        out[whole] = self.images[views[whole]]
+        out[~whole] = self.tiles[views[~whole] - self.num_images]
+        return out
+
+    def view_of(self, view: int) -> np.ndarray:
+        """The ``[S, S, 3]`` pixels of one view (a memmap slice, not a copy)."""
+        return self.images[view] if view < self.num_images else self.tiles[view - self.num_images]
 
     @property
     def usable_indices(self) -> np.ndarray:
@@ -152,6 +180,8 @@ class ImageCache:
         with np.load(cache_dir / META_FILE) as meta:
             scale, usable, pixel = meta["scale"], meta["usable"], meta["pixel"]
             size = int(meta["image_size"])
+            grid = TileGrid(meta["tile_image"], meta["tile_origin"], meta["tile_scale"], size)
+            tile_owner = meta["tile_owner"]
         shape = (len(scale), size, size, 3)
         expected = cache_bytes(len(scale), size)
         actual = (cache_dir / IMAGES_FILE).stat().st_size
@@ -166,7 +196,14 @@ class ImageCache:
             count = (cache_dir / CROPS_FILE).stat().st_size // crop_bytes(1)
             crops = (np.memmap(cache_dir / CROPS_FILE, dtype=np.uint8, mode="r", shape=(count, STORE, STORE, 3))
                      if count else np.zeros((0, STORE, STORE, 3), np.uint8))
-        return cls(cache_dir, images, scale, usable, pixel, problems, size, crops)
+        tiles = None
+        if grid.num_tiles:
+            tiles_shape = (grid.num_tiles, size, size, 3)
+            if (cache_dir / TILES_FILE).stat().st_size != cache_bytes(grid.num_tiles, size):
+                raise FileNotFoundError(f"{cache_dir / TILES_FILE}: not {cache_bytes(grid.num_tiles, size)} bytes "
+                                        f"for {tiles_shape}; the cache is damaged, delete {cache_dir} and rebuild")
+            tiles = np.memmap(cache_dir / TILES_FILE, dtype=np.uint8, mode="r", shape=tiles_shape)
+        return cls(cache_dir, images, scale, usable, pixel, problems, size, crops, tiles, grid, tile_owner)
 
 
 def _image_root(dataset: CocoDataset) -> Path:
@@ -174,7 +211,7 @@ def _image_root(dataset: CocoDataset) -> Path:
 
 
 def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pixels: bool,
-                 with_crops: bool, reduced_decode: bool) -> dict[str, Any]:
+                 with_crops: bool, reduced_decode: bool, tiles: dict[str, float] | None = None) -> dict[str, Any]:
     """What the cache depends on: dataset records, boxes (for clutter), view size, and the files' stat."""
     root = _image_root(dataset).resolve()
     digest = hashlib.sha256()
@@ -191,8 +228,15 @@ def _fingerprint(dataset: CocoDataset, image_size: int, max_pixels: int, with_pi
     digest.update(stats.tobytes())
     return {"version": CACHE_FORMAT_VERSION, "image_size": int(image_size), "max_pixels": int(max_pixels),
             "pixel_descriptors": bool(with_pixels), "crops": bool(with_crops), "reduced_decode": bool(reduced_decode),
-            "num_images": int(dataset.num_images),
+            "tiles": _tile_options(tiles), "num_images": int(dataset.num_images),
             "image_root": str(root), "digest": digest.hexdigest()}
+
+
+def _tile_options(tiles: dict[str, float] | None) -> dict[str, float]:
+    """The tile settings a cache is built with: ``scale`` (the cap of tile scales, 0 = no tiles) and
+    ``min_object_px`` (:func:`detdiff.data.views.plan_tiles`)."""
+    tiles = tiles or {}
+    return {"scale": float(tiles.get("scale") or 0.0), "min_object_px": float(tiles.get("min_object_px") or 16.0)}
 
 
 def _to_rgb8(im: Image.Image) -> np.ndarray:
@@ -320,12 +364,15 @@ _WORKER: dict[str, Any] = {}
 
 
 def _init_worker(images_path: str, shape: tuple[int, ...], max_pixels: int, with_pixels: bool,
-                 crops_path: str | None, num_crops: int, reduced_decode: bool) -> None:
+                 crops_path: str | None, num_crops: int, reduced_decode: bool, tiles_path: str | None = None,
+                 num_tiles: int = 0) -> None:
     if cv2.getNumThreads() != 1:     # in a forked worker the parent already made it 1 (see build_image_cache)
         cv2.setNumThreads(1)
     _WORKER["images"] = np.memmap(images_path, dtype=np.uint8, mode="r+", shape=shape)
     _WORKER["crops"] = (np.memmap(crops_path, dtype=np.uint8, mode="r+", shape=(num_crops, STORE, STORE, 3))
                         if crops_path and num_crops else None)
+    _WORKER["tiles"] = (np.memmap(tiles_path, dtype=np.uint8, mode="r+", shape=(num_tiles, *shape[1:]))
+                        if tiles_path and num_tiles else None)
     _WORKER["max_pixels"] = max_pixels
     _WORKER["with_pixels"] = with_pixels
     _WORKER["reduced_decode"] = reduced_decode
@@ -354,10 +401,12 @@ def _init_pool_worker(parent: int, *init_args: Any) -> None:
     _init_worker(*init_args)
 
 
-def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, int]) -> dict[str, Any]:
-    """Decode image ``index`` into row ``index`` of the memmap (and its boxes' crops into the crop rows from
-    ``first_ann``); return its scale, descriptors and notes."""
-    index, path, refusal, declared_w, declared_h, boxes_xywh, first_ann = task
+def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, int, int, TileGrid]) -> dict[str, Any]:
+    """Decode image ``index`` into row ``index`` of the memmap (its boxes' crops into the crop rows from
+    ``first_ann``, its tiles ``grid`` into the tile rows from ``first_tile``); return its scale, descriptors and
+    notes."""
+    index, path, refusal, declared_w, declared_h, boxes_xywh, first_ann, first_tile, grid = task
+    tile_rows = slice(first_tile, first_tile + grid.num_tiles)
     images = _WORKER["images"]
     size = images.shape[1]
     out: dict[str, Any] = {"index": index, "scale": size / max(declared_w, declared_h), "usable": False,
@@ -367,7 +416,10 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, 
     def reduce(file_w: int, file_h: int) -> int:
         if sorted((file_w, file_h)) != sorted((declared_w, declared_h)):
             return 1                                # size disagrees with the annotation: decode it all
-        return draft_reduction(file_w, file_h, boxes_xywh, size)
+        reduction = draft_reduction(file_w, file_h, boxes_xywh, size)
+        while grid.num_tiles and reduction > 1 and reduction * float(grid.scale.max()) > 1:
+            reduction //= 2                         # tiles keep at least one decoded px per tile px
+        return reduction
 
     try:
         if refusal is not None:
@@ -376,6 +428,8 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, 
                                        reduce if _WORKER["reduced_decode"] else None)
     except _Refused as exc:
         images[index] = PAD_VALUE
+        if grid.num_tiles:
+            _WORKER["tiles"][tile_rows] = PAD_VALUE
         out["notes"].append(("error", str(exc)))
         return out
     out["reduction"] = reduction
@@ -396,13 +450,22 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, 
             out["pixel"] = pixel_descriptors(full, boxes_here)
         if _WORKER["crops"] is not None and len(boxes_here):
             _WORKER["crops"][first_ann:first_ann + len(boxes_here)] = object_crops(full, boxes_here)
+        if grid.num_tiles:
+            _WORKER["tiles"][tile_rows] = tile_pixels(full, declared_w, declared_h, grid, size, PAD_VALUE)
     except (cv2.error, ValueError, MemoryError) as exc:
         images[index] = PAD_VALUE
+        if grid.num_tiles:
+            _WORKER["tiles"][tile_rows] = PAD_VALUE
         out["notes"] = [("error", f"decoded but could not be resized or measured ({type(exc).__name__}: {exc})")]
         return out
     images[index] = view
     out["scale"], out["usable"] = scale, True
     return out
+
+
+def tile_meta(grid: TileGrid, tile_owner: np.ndarray) -> dict[str, np.ndarray]:
+    """The tile arrays saved in ``meta.npz``."""
+    return {"tile_image": grid.image, "tile_origin": grid.origin, "tile_scale": grid.scale, "tile_owner": tile_owner}
 
 
 def _pool_context() -> multiprocessing.context.BaseContext:
@@ -412,9 +475,10 @@ def _pool_context() -> multiprocessing.context.BaseContext:
     return multiprocessing.get_context("fork" if "fork" in methods else "spawn")
 
 
-def _tasks(dataset: CocoDataset):
-    """One task per image: path (or the reason it is refused), declared size and its boxes."""
+def _tasks(dataset: CocoDataset, grid: TileGrid):
+    """One task per image: path (or the reason it is refused), declared size, its boxes and its tiles."""
     root = _image_root(dataset)
+    tile_first = np.searchsorted(grid.image, np.arange(dataset.num_images + 1), side="left")
     for i in range(dataset.num_images):
         refusal, path = None, None
         try:
@@ -424,7 +488,9 @@ def _tasks(dataset: CocoDataset):
         except (OSError, ValueError) as exc:
             refusal = f"unreadable file_name: {exc}"
         rows = dataset.ann_slice(i)
-        yield (i, path, refusal, int(dataset.widths[i]), int(dataset.heights[i]), dataset.boxes[rows], rows.start)
+        tiles = np.arange(tile_first[i], tile_first[i + 1])
+        yield (i, path, refusal, int(dataset.widths[i]), int(dataset.heights[i]), dataset.boxes[rows], rows.start,
+               int(tile_first[i]), grid.take(tiles))
 
 
 class _DecodeProgress:
@@ -483,13 +549,14 @@ def _resumable(cache_dir: Path, sizes: dict[str, int], progress: _DecodeProgress
 
 
 def current_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
-                  pixel_stats: bool = True, with_crops: bool = False, reduced_decode: bool = True) -> ImageCache | None:
+                  pixel_stats: bool = True, with_crops: bool = False, reduced_decode: bool = True,
+                  tiles: dict[str, float] | None = None) -> ImageCache | None:
     """The complete cache in ``cache_dir`` when it was built from this dataset, these files and settings, else None."""
     cache_dir = Path(cache_dir)
     fp_path = cache_dir / FINGERPRINT_FILE
     if not fp_path.is_file():
         return None
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode, tiles)
     try:
         if json.loads(fp_path.read_text()) == fingerprint:
             return ImageCache.open(cache_dir)
@@ -501,7 +568,8 @@ def current_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, 
 def _clear_for_build(cache_dir: Path, needed_bytes: int) -> None:
     """Check that ``needed_bytes`` fit (counting what an outdated cache or an abandoned partial build frees), then
     remove them, fingerprint first (from then on no complete cache is claimed)."""
-    outdated = [cache_dir / n for n in (IMAGES_FILE, CROPS_FILE, IMAGES_FILE + PARTIAL, CROPS_FILE + PARTIAL)]
+    outdated = [cache_dir / n for n in (IMAGES_FILE, CROPS_FILE, TILES_FILE, IMAGES_FILE + PARTIAL,
+                                        CROPS_FILE + PARTIAL, TILES_FILE + PARTIAL)]
     reclaimable = sum(f.stat().st_size for f in outdated if f.is_file())
     check_folder_room(cache_dir, max(0, needed_bytes - reclaimable) + 1_000_000, "the image cache")
     (cache_dir / FINGERPRINT_FILE).unlink(missing_ok=True)
@@ -527,7 +595,8 @@ def _publish(cache_dir: Path, maps: dict[str, Path], meta: dict[str, Any], probl
 
 def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: int, *, max_pixels: int,
                       progress: bool = True, workers: int = 2, pixel_stats: bool = True,
-                      with_crops: bool = False, reduced_decode: bool = True) -> ImageCache:
+                      with_crops: bool = False, reduced_decode: bool = True,
+                      tiles: dict[str, float] | None = None) -> ImageCache:
     """Decode every image of ``dataset`` once into ``cache_dir`` (see module docstring) and open it.
 
     A complete cache for the same dataset, files and view size is reused as is; an interrupted build of
@@ -537,18 +606,23 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     ``pixel_stats`` = False skips the descriptors (``analysis.pixel_descriptors`` off): ``pixel`` is NaN.
     ``with_crops`` also stores one crop per annotation (``crops.u8``) for the cross-fitted crop models.
     ``reduced_decode`` decodes large JPEGs at reduced size where views and crops allow (module docstring).
+    ``tiles`` (``{"scale": cap, "min_object_px": px}``) also cuts the tiles of :func:`detdiff.data.views.plan_tiles`
+    into ``tiles.u8`` (none when ``scale`` is 0 or absent).
     """
     cache_dir = Path(cache_dir)
     reusable = current_cache(dataset, cache_dir, image_size, max_pixels=max_pixels, pixel_stats=pixel_stats,
-                             with_crops=with_crops, reduced_decode=reduced_decode)
+                             with_crops=with_crops, reduced_decode=reduced_decode, tiles=tiles)
     if reusable is not None:
         return reusable
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode, tiles)
     fp_path = cache_dir / FINGERPRINT_FILE
     num = dataset.num_images
     num_crops = dataset.num_annotations if with_crops else 0
     shape = (num, image_size, image_size, 3)
-    sizes = {IMAGES_FILE: cache_bytes(num, image_size)} | ({CROPS_FILE: crop_bytes(num_crops)} if with_crops else {})
+    options = _tile_options(tiles)
+    grid, tile_owner = plan_tiles(dataset, image_size, options["scale"], options["min_object_px"])
+    sizes = ({IMAGES_FILE: cache_bytes(num, image_size)} | ({CROPS_FILE: crop_bytes(num_crops)} if with_crops else {})
+             | ({TILES_FILE: cache_bytes(grid.num_tiles, image_size)} if grid.num_tiles else {}))
     state = _DecodeProgress(cache_dir, fingerprint, num)
     if cache_dir.is_dir() and _resumable(cache_dir, sizes, state):
         check_folder_room(cache_dir, 1_000_000, "the image cache")
@@ -559,8 +633,10 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
             allocate(cache_dir / (name + PARTIAL), size)
     images_path = cache_dir / (IMAGES_FILE + PARTIAL)
     crops_path = cache_dir / (CROPS_FILE + PARTIAL) if with_crops else None
+    tiles_path = cache_dir / (TILES_FILE + PARTIAL) if grid.num_tiles else None
     init_args = (str(images_path), shape, int(max_pixels), bool(pixel_stats),
-                 None if crops_path is None else str(crops_path), num_crops, bool(reduced_decode))
+                 None if crops_path is None else str(crops_path), num_crops, bool(reduced_decode),
+                 None if tiles_path is None else str(tiles_path), grid.num_tiles)
     todo = int((~state.done).sum())
     bar = tqdm(total=num, initial=num - todo, desc="decode images", unit="img", disable=not progress, leave=False)
 
@@ -577,7 +653,7 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
             state.save()
         bar.update(1)
 
-    tasks = (task for task in _tasks(dataset) if not state.done[task[0]])
+    tasks = (task for task in _tasks(dataset, grid) if not state.done[task[0]])
     try:
         if todo == 0:
             pass
@@ -587,9 +663,9 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
                 _init_worker(*init_args)
                 for task in tasks:
                     collect(_decode_task(task))
-                _WORKER["images"].flush()
-                if _WORKER["crops"] is not None:
-                    _WORKER["crops"].flush()
+                for name in ("images", "crops", "tiles"):
+                    if _WORKER[name] is not None:
+                        _WORKER[name].flush()
             finally:
                 _WORKER.clear()
                 _WORKER.update(saved)
@@ -613,5 +689,5 @@ def build_image_cache(dataset: CocoDataset, cache_dir: str | Path, image_size: i
 
     problems = sorted(state.problems, key=lambda p: (p["index"], p["level"]))
     meta = {"scale": state.scale, "usable": state.usable, "pixel": state.pixel, "image_ids": dataset.image_ids,
-            "image_size": np.int64(image_size), "reduction": state.reduction}
+            "image_size": np.int64(image_size), "reduction": state.reduction} | tile_meta(grid, tile_owner)
     return _publish(cache_dir, {name: cache_dir / (name + PARTIAL) for name in sizes}, meta, problems, fingerprint)

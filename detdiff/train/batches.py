@@ -1,7 +1,9 @@
-"""Training batches read straight from the image cache's letterbox view, and the flips applied to them.
+"""Training batches read straight from the image cache's views, and the flips applied to them.
 
-What is trained on is exactly what is logged: :class:`BatchMaker` indexes the cache's uint8 memmap
-(``detdiff.data.image_cache``); there is no decode and no other augmentation. The only augmentation is flipping
+What is trained on is exactly what is logged: :class:`BatchMaker` indexes the cache's uint8 memmaps
+(``detdiff.data.image_cache``): each image's letterboxed whole view and the tiles where its small boxes need
+them (``detdiff.data.views``: a batch is a set of views, each annotation logged by one of them); there is no decode
+and no other augmentation. The only augmentation is flipping
 (``train.flips``: none, horizontal, both axes, or ``dihedral``: both axes and the transpose), drawn per image
 and epoch from the seed; each maps the square view and its anchor grid onto themselves, so an object's losses
 stay comparable across epochs, and logged boxes are mapped back (:meth:`Batch.unflip`) before they are
@@ -19,20 +21,26 @@ import torch
 
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache
+from detdiff.data.views import TileGrid, ViewTable
 
 
 @dataclass
 class Batch:
-    """One training batch from the cache; ``object_index`` are dataset annotation rows of the targets, in order."""
+    """One training batch of views; ``object_index`` are dataset annotation rows of the targets, in order, and
+    ``object_logged`` marks the targets whose losses are logged (the view is the annotation's owner)."""
 
-    image_index: np.ndarray                  # int64 [B] dataset image rows
+    image_index: np.ndarray                  # int64 [B] dataset image row of each view
     images: torch.Tensor                     # float32 [B, 3, S, S] in 0..1
-    targets: list[dict[str, torch.Tensor]]   # per image {"boxes": [n_b, 4] xyxy view px, "labels": int64 [n_b]}
-    object_index: np.ndarray                 # int64 [T] = concatenation of the images' non-crowd annotation rows
+    targets: list[dict[str, torch.Tensor]]   # per view {"boxes": [n_b, 4] xyxy view px, "labels": int64 [n_b]}
+    object_index: np.ndarray                 # int64 [T] annotation rows of the views' targets, view by view
     image_scale: np.ndarray                  # float64 [B] view px per original px
-    object_scale: np.ndarray                 # float64 [T] scale of each target's image
+    object_scale: np.ndarray                 # float64 [T] scale of each target's view
     flips: np.ndarray | None = None          # bool [B, 3] (horizontal, vertical, transpose) applied to each view
-    object_flips: np.ndarray | None = None   # bool [T, 3] flips of each target's image
+    object_flips: np.ndarray | None = None   # bool [T, 3] flips of each target's view
+    view_index: np.ndarray | None = None     # int64 [B] views (= image_index without tiles)
+    image_origin: np.ndarray | None = None   # float64 [B, 2] original px of each view's top-left corner
+    object_origin: np.ndarray | None = None  # float64 [T, 2] origin of each target's view
+    object_logged: np.ndarray | None = None  # bool [T] the target's losses are logged (None: all are)
 
     def unflip(self, boxes: torch.Tensor, flips: np.ndarray | None) -> torch.Tensor:
         """``[n, 4]`` xyxy boxes on the flipped views -> boxes on the cache's views (``flips [n, 3]``)."""
@@ -67,9 +75,10 @@ def flip_view_boxes(boxes: torch.Tensor, flips: torch.Tensor, size: int, *, inve
 
 
 class BatchMaker:
-    """Builds :class:`Batch` es from the memmap: index, ``torch.from_numpy``, permute, ``/ 255``; no decode.
+    """Builds :class:`Batch` es of views from the memmaps: index, ``torch.from_numpy``, permute, ``/ 255``; no decode.
 
-    Targets are the non-crowd annotations of each image, boxes ``xywh original -> xyxy view = xyxy * scale``.
+    Targets of a whole view are the non-crowd annotations of its image, boxes ``xywh original -> xyxy view = xyxy *
+    scale``; those of a tile are the boxes it shows enough of, clipped (:class:`detdiff.data.views.ViewTable`).
     ``flips`` (a :data:`FLIP_MODES` key): each allowed axis is flipped (and the view transposed) with
     probability 1/2 per image, drawn by :meth:`set_epoch` from ``PCG64([seed, epoch, 1])`` (flips) and
     ``PCG64([seed, epoch, 2])`` (transpose) for all images at once, so the draw does not depend on batch
@@ -83,31 +92,32 @@ class BatchMaker:
         self.allowed = np.array(FLIP_MODES[flips])
         self.seed, self.epoch_flips = seed, None
         self.cache, self.device = cache, device
-        self.train_rows = np.flatnonzero(~dataset.iscrowd).astype(np.int64)           # [T_all] sorted by image
-        owner = dataset.ann_image_index[self.train_rows]
-        self.offsets = np.concatenate([[0], np.cumsum(np.bincount(owner, minlength=dataset.num_images))])
-        scale = cache.scale[dataset.ann_image_index]                                 # [A]
-        self.view_boxes = (dataset.boxes_xyxy() * scale[:, None]).astype(np.float32)  # [A, 4]
+        self.views = cache_views(dataset, cache)
         self.labels = dataset.labels.astype(np.int64)
 
     def set_epoch(self, epoch: int) -> None:
         """Draw this epoch's flips of every image (no-op without flips)."""
         if self.allowed.any():
-            draw = np.random.default_rng([self.seed, epoch, 1]).random((self.cache.num_images, 2)) < 0.5
-            turn = np.random.default_rng([self.seed, epoch, 2]).random((self.cache.num_images, 1)) < 0.5
+            draw = np.random.default_rng([self.seed, epoch, 1]).random((self.views.num_views, 2)) < 0.5
+            turn = np.random.default_rng([self.seed, epoch, 2]).random((self.views.num_views, 1)) < 0.5
             self.epoch_flips = np.hstack([draw, turn]) & self.allowed
 
-    def _view_pixels(self, image_index: np.ndarray, flips: np.ndarray | None) -> np.ndarray:
+    @property
+    def usable_views(self) -> np.ndarray:
+        """The views of the cache's usable images, ascending: what an epoch trains on."""
+        return self.views.usable_views(self.cache.usable)
+
+    def _view_pixels(self, view_index: np.ndarray, flips: np.ndarray | None) -> np.ndarray:
         """``uint8 [B, S, S, 3]`` views of the batch, each transposed then mirrored as ``flips [B, 3]`` says.
 
-        numpy's transpose and reversed slices are views of the memmap, so each image is copied once, flipped
-        or not (a loop over the batch's images, not over boxes).
+        numpy's transpose and reversed slices are views of the memmap, so each view is copied once, flipped
+        or not (a loop over the batch's views, not over boxes).
         """
         if flips is None or not flips.any():
-            return np.ascontiguousarray(self.cache.images[image_index])
-        out = np.empty((len(image_index), *self.cache.images.shape[1:]), dtype=np.uint8)
-        for b, (i, (h, v, t)) in enumerate(zip(image_index, flips)):
-            view = self.cache.images[i]                                # [S, S, 3]: y, x, channel
+            return self.cache.view_pixels(view_index)
+        out = np.empty((len(view_index), *self.cache.images.shape[1:]), dtype=np.uint8)
+        for b, (i, (h, v, t)) in enumerate(zip(view_index, flips)):
+            view = self.cache.view_of(int(i))                          # [S, S, 3]: y, x, channel
             if t:
                 view = view.transpose(1, 0, 2)
             if h:
@@ -117,23 +127,34 @@ class BatchMaker:
             out[b] = view
         return out
 
-    def __call__(self, image_index: np.ndarray) -> Batch:
-        """The batch of dataset image rows ``image_index``, with this epoch's flips (:meth:`set_epoch`) applied."""
-        rows = [self.train_rows[self.offsets[i]:self.offsets[i + 1]] for i in image_index]
-        counts = np.array([len(r) for r in rows], dtype=np.int64)
+    def __call__(self, view_index: np.ndarray) -> Batch:
+        """The batch of views ``view_index`` (whole view ``i`` = image row ``i``), with this epoch's flips
+        (:meth:`set_epoch`) applied."""
+        view_index = np.asarray(view_index, np.int64)
+        views = self.views
+        counts = views.offsets[view_index + 1] - views.offsets[view_index]
+        at = views.targets(view_index)
         flips = object_flips = None
         if self.epoch_flips is not None:
-            flips = self.epoch_flips[image_index]
+            flips = self.epoch_flips[view_index]
             object_flips = np.repeat(flips, counts, axis=0)
-        pixels = torch.from_numpy(self._view_pixels(image_index, flips))                     # [B, S, S, 3] uint8
+        pixels = torch.from_numpy(self._view_pixels(view_index, flips))                     # [B, S, S, 3] uint8
         images = pixels.to(self.device, non_blocking=True).permute(0, 3, 1, 2).float().div_(255.0)
-        object_index = np.concatenate(rows) if rows else np.zeros(0, np.int64)
-        boxes = torch.from_numpy(self.view_boxes[object_index]).to(self.device)
+        object_index = views.target_row[at]
+        boxes = torch.from_numpy(views.target_box[at]).to(self.device)
         if object_flips is not None and object_flips.any():
             boxes = flip_view_boxes(boxes, torch.from_numpy(object_flips).to(self.device), images.shape[-1])
         labels = torch.from_numpy(self.labels[object_index]).to(self.device)
         targets = [{"boxes": b, "labels": lab}
                    for b, lab in zip(boxes.split(counts.tolist()), labels.split(counts.tolist()))]
-        image_scale = self.cache.scale[image_index]
-        return Batch(np.asarray(image_index, np.int64), images, targets, object_index, image_scale,
-                     np.repeat(image_scale, counts), flips, object_flips)
+        image_scale, origin = views.scale[view_index], views.origin[view_index]
+        return Batch(views.image[view_index], images, targets, object_index, image_scale,
+                     np.repeat(image_scale, counts), flips, object_flips, view_index, origin,
+                     np.repeat(origin, counts, axis=0), views.target_logged[at])
+
+
+def cache_views(dataset: CocoDataset, cache: ImageCache) -> ViewTable:
+    """The views of ``cache`` (whole views at the cache's scales, then its tiles) with their targets."""
+    grid = cache.grid if cache.grid is not None else TileGrid.empty(cache.image_size)
+    owner = cache.tile_owner if cache.tile_owner is not None else np.full(dataset.num_annotations, -1, np.int64)
+    return ViewTable.build(dataset, cache.scale, grid, owner, cache.image_size)

@@ -108,9 +108,8 @@ def coco_metrics(gt_dict: dict[str, Any], detections: list[dict[str, Any]], *, m
     return metrics
 
 
-def _orig_xywh(boxes_view: np.ndarray, scale: np.ndarray, width: np.ndarray, height: np.ndarray) -> np.ndarray:
-    """``[n, 4]`` xyxy view px -> xywh original px, clipped to the declared image (per-row ``scale``, size ``[n]``)."""
-    b = boxes_view / scale[:, None]
+def _orig_xywh(b: np.ndarray, width: np.ndarray, height: np.ndarray) -> np.ndarray:
+    """``[n, 4]`` xyxy original px -> xywh, clipped to the declared image (size ``[n]``)."""
     x1 = np.clip(b[:, 0], 0, width)
     y1 = np.clip(b[:, 1], 0, height)
     x2 = np.clip(b[:, 2], 0, width)
@@ -118,14 +117,60 @@ def _orig_xywh(boxes_view: np.ndarray, scale: np.ndarray, width: np.ndarray, hei
     return np.stack([x1, y1, x2 - x1, y2 - y1], axis=1)
 
 
+#: Detections of overlapping views of one image (its whole view and tiles) are merged by class-wise NMS at this IoU
+#: (the per-view NMS's own threshold).
+MERGE_IOU = 0.5
+#: A tile's detection within this many px of a tile edge that is not the image's edge is cut by that edge: an
+#: overlapping tile or the whole view sees the object whole, so it is dropped (common practice in tiled inference).
+EDGE_PX = 1.0
+
+
+def _cut_by_tile_edge(boxes_view: np.ndarray, views: np.ndarray, table, widths: np.ndarray,
+                      heights: np.ndarray, size: int) -> np.ndarray:
+    """bool ``[n]``: detections of tiles touching one of the tile's inner edges (:data:`EDGE_PX`)."""
+    tile = views >= table.num_images
+    origin, scale, image = table.origin[views], table.scale[views], table.image[views]
+    far_x = origin[:, 0] + size / scale < widths[image] - 1e-6           # the tile's right edge is inside the image
+    far_y = origin[:, 1] + size / scale < heights[image] - 1e-6
+    cut = (((boxes_view[:, 0] <= EDGE_PX) & (origin[:, 0] > 0)) | ((boxes_view[:, 1] <= EDGE_PX) & (origin[:, 1] > 0))
+           | ((boxes_view[:, 2] >= size - EDGE_PX) & far_x) | ((boxes_view[:, 3] >= size - EDGE_PX) & far_y))
+    return tile & cut
+
+
+def merge_view_detections(image: np.ndarray, label: np.ndarray, xyxy: np.ndarray, score: np.ndarray,
+                          from_tile: np.ndarray, max_dets: int, num_classes: int) -> np.ndarray:
+    """Indices of the detections kept after merging the views of each image: images with tile detections get one
+    class-wise NMS (torchvision ``batched_nms``, :data:`MERGE_IOU`) over all their views; then at most ``max_dets``
+    per image, best first. Images without tiles keep their detections as they are."""
+    from torchvision.ops import batched_nms
+
+    keep = np.ones(len(image), dtype=bool)
+    tiled = np.isin(image, np.unique(image[from_tile]))
+    rows = np.flatnonzero(tiled)
+    if len(rows):
+        kept = batched_nms(torch.from_numpy(xyxy[rows]).float(), torch.from_numpy(score[rows]).float(),
+                           torch.from_numpy(image[rows] * num_classes + label[rows]), MERGE_IOU).numpy()
+        keep[rows] = False
+        keep[rows[kept]] = True
+    index = np.flatnonzero(keep)
+    order = index[np.lexsort((-score[index], image[index]))]
+    first = np.searchsorted(image[order], image[order], side="left")
+    return np.sort(order[np.arange(len(order)) - first < max_dets])
+
+
 @torch.no_grad()
 def final_pass(model: torch.nn.Module, dataset: CocoDataset, cache: ImageCache, config: dict[str, Any],
                rundir: str | Path, *, batch_size: int | None = None) -> dict[str, Any]:
-    """Eval-mode pass over the usable images: write detections, object features and COCOeval metrics.
+    """Eval-mode pass over the views of the usable images: write detections, object features and COCOeval metrics.
 
     Returns the metrics dict written to ``RUNDIR/metrics.json`` (see :func:`coco_metrics`). Detection boxes are
-    mapped back to original pixels (``/ scale``) and clipped to the declared image; padding is not image.
+    mapped back to original pixels (``/ scale + origin``) and clipped to the declared image; padding is not image.
+    An image with tiles (``detdiff.data.views``) gets the detections of all its views, those cut by a tile's inner
+    edge dropped, merged by class-wise NMS (:func:`merge_view_detections`). Each object's features are pooled in
+    the view that logs it.
     """
+    from detdiff.train.batches import cache_views
+
     rundir = Path(rundir)
     rundir.mkdir(parents=True, exist_ok=True)
     model = unwrap_model(model)
@@ -133,20 +178,20 @@ def final_pass(model: torch.nn.Module, dataset: CocoDataset, cache: ImageCache, 
     device = next(model.parameters()).device
     was_training = model.training
     model.eval()
-    usable = cache.usable_indices
+    table = cache_views(dataset, cache)
+    usable = table.usable_views(cache.usable)
     batch_size = int(batch_size or 2 * config["train"]["batch_size"])
     train_rows = ~dataset.iscrowd
     per_image = np.bincount(dataset.ann_image_index[train_rows], minlength=dataset.num_images)
     max_dets = int(max(eval_cfg["max_detections"], per_image.max(initial=0)))
-    view_boxes = (dataset.boxes_xyxy() * cache.scale[dataset.ann_image_index][:, None]).astype(np.float32)
     num_channels = None
     features_tmp = rundir / f"object_features.npy.tmp-{os.getpid()}"
     features: np.ndarray | None = None
-    found: list[tuple[np.ndarray, ...]] = []        # per batch: image_ids, category_ids, xywh, scores
+    found: list[tuple[np.ndarray, ...]] = []        # per batch: image rows, labels, xyxy original, scores, from tile
     try:
         for start in range(0, len(usable), batch_size):
             index = usable[start:start + batch_size]
-            pixels = torch.from_numpy(np.ascontiguousarray(cache.images[index]))
+            pixels = torch.from_numpy(cache.view_pixels(index))
             images = pixels.to(device).permute(0, 3, 1, 2).float().div_(255.0)
             outputs = model(images)
             dets = postprocess_detections(outputs, model.anchors, score_threshold=eval_cfg["score_threshold"],
@@ -154,26 +199,30 @@ def final_pass(model: torch.nn.Module, dataset: CocoDataset, cache: ImageCache, 
                                           image_size=cache.image_size)
             counts = np.array([len(d["scores"]) for d in dets])
             if counts.sum():
-                owner = np.repeat(index, counts)
+                view = np.repeat(index, counts)
                 boxes = torch.cat([d["boxes"] for d in dets]).float().cpu().numpy()
-                xywh = _orig_xywh(boxes, cache.scale[owner], dataset.widths[owner], dataset.heights[owner])
-                keep = (xywh[:, 2] > 0) & (xywh[:, 3] > 0)
+                owner = table.image[view]
+                xywh = _orig_xywh(table.to_original(boxes, view), dataset.widths[owner], dataset.heights[owner])
+                keep = ((xywh[:, 2] > 0) & (xywh[:, 3] > 0)
+                        & ~_cut_by_tile_edge(boxes, view, table, dataset.widths, dataset.heights, cache.image_size))
                 labels = torch.cat([d["labels"] for d in dets]).cpu().numpy()
                 scores = torch.cat([d["scores"] for d in dets]).float().cpu().numpy()
-                found.append((dataset.image_ids[owner][keep], dataset.category_ids[labels][keep], xywh[keep],
-                              scores[keep]))
+                found.append((owner[keep], labels[keep], xywh[keep], scores[keep],
+                              view[keep] >= dataset.num_images))
             if num_channels is None:
                 num_channels = int(outputs["features"][0].shape[1])
                 features = np.lib.format.open_memmap(features_tmp, mode="w+", dtype=np.float32,
                                                      shape=(dataset.num_annotations, num_channels))
                 reserve(features_tmp)
                 features[...] = np.nan
-            rows = np.concatenate([np.arange(dataset.image_offsets[i], dataset.image_offsets[i + 1]) for i in index])
-            rows = rows[train_rows[rows]].astype(np.int64)
+            at = table.targets(index)
+            batch_of_target = np.repeat(np.arange(len(index)), table.offsets[index + 1] - table.offsets[index])
+            logged = table.target_logged[at]
+            rows = table.target_row[at][logged]
             if len(rows):
-                batch_of_row = np.searchsorted(index, dataset.ann_image_index[rows])
-                pooled = pooled_object_features(outputs["features"], torch.from_numpy(view_boxes[rows]).to(device),
-                                                torch.from_numpy(batch_of_row).to(device),
+                pooled = pooled_object_features(outputs["features"],
+                                                torch.from_numpy(table.target_box[at][logged]).to(device),
+                                                torch.from_numpy(batch_of_target[logged]).to(device),
                                                 strides=list(model.strides))
                 features[rows] = pooled.float().cpu().numpy()
         if features is None:
@@ -187,11 +236,19 @@ def final_pass(model: torch.nn.Module, dataset: CocoDataset, cache: ImageCache, 
         features_tmp.unlink(missing_ok=True)
         model.train(was_training)
 
+    if found:
+        image, label, xywh, score, from_tile = (np.concatenate(part) for part in zip(*found))
+    else:
+        image, label, xywh, score, from_tile = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros((0, 4)),
+                                                np.zeros(0), np.zeros(0, bool))
+    kept = merge_view_detections(image, label, np.concatenate([xywh[:, :2], xywh[:, :2] + xywh[:, 2:]], axis=1),
+                                 score, from_tile, max_dets, dataset.num_classes)
     detections = [{"image_id": int(i), "category_id": int(c), "bbox": [round(float(v), 2) for v in box],
                    "score": round(float(s), 5)}
-                  for ids, cats, boxes, scores in found for i, c, box, s in zip(ids, cats, boxes, scores)]
+                  for i, c, box, s in zip(dataset.image_ids[image[kept]], dataset.category_ids[label[kept]],
+                                          xywh[kept], score[kept])]
     write_json_atomic(rundir / "detections.json", detections)
     metrics = coco_metrics(dataset.to_coco_dict(), detections, max_dets=max_dets, min_ap50=eval_cfg["min_ap50"],
-                           image_ids=[int(i) for i in dataset.image_ids[usable]])
+                           image_ids=[int(i) for i in dataset.image_ids[cache.usable_indices]])
     write_json_atomic(rundir / "metrics.json", metrics)
     return metrics

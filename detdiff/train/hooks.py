@@ -55,10 +55,35 @@ class Hook:
     def on_error(self, state: TrainState) -> None: ...
 
 
-def _xyxy_view_to_xywh_orig(boxes: torch.Tensor, scale: np.ndarray) -> np.ndarray:
-    """``[n, 4]`` xyxy view px -> ``[n, 4]`` xywh original px (divide by each row's ``scale [n]``)."""
+def _xyxy_view_to_xywh_orig(boxes: torch.Tensor, scale: np.ndarray, origin: np.ndarray | None = None) -> np.ndarray:
+    """``[n, 4]`` xyxy view px -> ``[n, 4]`` xywh original px (divide by each row's ``scale [n]``, add its view's
+    ``origin [n, 2]``)."""
     b = boxes.detach().float().cpu().numpy() / np.asarray(scale, np.float64)[:, None]
+    if origin is not None:
+        b = b + np.tile(origin, 2)
     return np.concatenate([b[:, :2], b[:, 2:] - b[:, :2]], axis=1).astype(np.float32)
+
+
+#: A tile's confident detection that covers at least this share of its own area with an annotation of the image is
+#: a view of that annotation (e.g. the part of a box that a tile border cut off), not a missing box.
+PART_OF_BOX = 0.5
+
+
+def _parts_of_boxes(ann_xyxy: np.ndarray, image_offsets: np.ndarray, image_index: np.ndarray,
+                    boxes_xywh: np.ndarray) -> np.ndarray:
+    """bool ``[n]``: detections (``boxes_xywh`` original px of images ``image_index``) lying mostly inside an
+    annotated box of their image (intersection over the detection's area >= :data:`PART_OF_BOX`); ``ann_xyxy [A, 4]``
+    are the dataset's boxes, image ``i``'s at ``image_offsets[i]:image_offsets[i + 1]``."""
+    count = image_offsets[image_index + 1] - image_offsets[image_index]
+    det = np.repeat(np.concatenate([boxes_xywh[:, :2], boxes_xywh[:, :2] + boxes_xywh[:, 2:]], axis=1), count, axis=0)
+    rows = np.repeat(image_offsets[image_index], count) + np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count,
+                                                                                                count)
+    ann = ann_xyxy[rows]
+    inter = np.prod(np.clip(np.minimum(det[:, 2:], ann[:, 2:]) - np.maximum(det[:, :2], ann[:, :2]), 0, None), axis=1)
+    share = inter / np.maximum(np.prod(det[:, 2:] - det[:, :2], axis=1), 1e-9)
+    best = np.zeros(len(image_index))
+    np.maximum.at(best, np.repeat(np.arange(len(image_index)), count), share)
+    return best >= PART_OF_BOX
 
 
 class LossLogHook(Hook):
@@ -68,7 +93,8 @@ class LossLogHook(Hook):
     """
 
     def __init__(self, log_dir: Path, dataset: CocoDataset, info: ddp.DistInfo, unmatched_per_image: int) -> None:
-        self.log_dir, self.info = log_dir, info
+        self.log_dir, self.info, self.num_images = log_dir, info, dataset.num_images
+        self.ann_xyxy, self.image_offsets = dataset.boxes_xyxy(), dataset.image_offsets
         self.writer = LossLogWriter(log_dir, dataset.num_images, dataset.num_annotations,
                                     rank=info.rank if info.distributed else None,
                                     unmatched_capacity=max(1, int(unmatched_per_image)) * dataset.num_images)
@@ -80,15 +106,27 @@ class LossLogHook(Hook):
         image = {k: streams.image[k].detach().cpu().numpy() for k in IMAGE_FIELDS}
         objects = {k: streams.objects[k].detach().cpu().numpy() for k in OBJECT_FIELDS if k != "pred_box"}
         objects["pred_box"] = _xyxy_view_to_xywh_orig(batch.unflip(streams.objects["pred_box"], batch.object_flips),
-                                                      batch.object_scale)
+                                                      batch.object_scale, batch.object_origin)
+        object_index = batch.object_index
+        if batch.object_logged is not None and not batch.object_logged.all():
+            logged = batch.object_logged                  # only the owner view logs an annotation
+            objects = {k: v[logged] for k, v in objects.items()}
+            object_index = object_index[logged]
         um = streams.unmatched
         where = um["batch_index"].cpu().numpy()
         unmatched = {"image_index": batch.image_index[where],
                      "box": _xyxy_view_to_xywh_orig(
                          batch.unflip(um["box"], None if batch.flips is None else batch.flips[where]),
-                         batch.image_scale[where]),
+                         batch.image_scale[where], None if batch.image_origin is None else batch.image_origin[where]),
                      "score": um["score"].cpu().numpy(), "label": um["label"].cpu().numpy()}
-        self.writer.process(batch.image_index, image, batch.object_index, objects, unmatched)
+        if batch.view_index is not None:
+            tile = batch.view_index[where] >= self.num_images
+            if tile.any():
+                part = np.zeros(len(where), dtype=bool)
+                part[tile] = _parts_of_boxes(self.ann_xyxy, self.image_offsets, unmatched["image_index"][tile],
+                                             unmatched["box"][tile].astype(np.float64))
+                unmatched = {k: v[~part] for k, v in unmatched.items()}
+        self.writer.process(batch.image_index, image, object_index, objects, unmatched)
 
     def after_epoch(self, state: TrainState) -> None:
         self.writer.finalize()
@@ -128,7 +166,7 @@ class ProgressHook(Hook):
         self.seen = 0
 
     def before_epoch(self, state: TrainState) -> None:
-        self.bar = tqdm(total=state.images_in_epoch, unit="img", leave=False, smoothing=0,
+        self.bar = tqdm(total=state.images_in_epoch, unit="view", leave=False, smoothing=0,
                         desc=f"epoch {state.epoch + 1}/{self.num_epochs}")
         self.sums[:] = 0.0
         self.seen = 0

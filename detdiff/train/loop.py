@@ -5,8 +5,8 @@ epoch; recording is done by hooks (``detdiff.train.hooks``: :class:`LossLogHook`
 :class:`ProgressHook`), not inside the step (the split of torchvision's ``references/detection`` loop with
 detectron2-style hooks).
 
-What is trained on is exactly what is logged: batches are read straight from the image cache's letterbox
-view, flipped per image and epoch as ``train.flips`` says (``detdiff.train.batches``, which gives the
+What is trained on is exactly what is logged: batches are read straight from the image cache's views (each
+image's letterboxed whole view, and tiles where small boxes need them: ``detdiff.data.views``), flipped per image and epoch as ``train.flips`` says (``detdiff.train.batches``, which gives the
 rationale), and logged boxes are mapped back before they are written.
 
 Reproducibility: ``torch.manual_seed(train.seed)`` before the model is built, the order of each epoch from
@@ -200,7 +200,9 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
     ckpt_path, log_dir = rundir / CHECKPOINT_FILE, rundir / LOG_DIR
     model = model.to(info.device)
     optimizer = build_optimizer(model, train_cfg)
-    steps = ddp.steps_per_epoch(len(usable), batch_size, info.world_size)
+    make_batch = BatchMaker(dataset, cache, info.device, flips=str(train_cfg["flips"]), seed=seed)
+    views = make_batch.usable_views                  # whole views of the usable images, then their tiles
+    steps = ddp.steps_per_epoch(len(views), batch_size, info.world_size)
     scheduler = torch.optim.lr_scheduler.LambdaLR(
         optimizer, warmup_cosine(int(train_cfg["warmup_iters"]), steps * epochs))
     dataset_key = _dataset_key(dataset, usable)
@@ -234,11 +236,10 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
                          CheckpointHook(ckpt_path, {"dataset": dataset_key})]
     if progress and info.is_main:
         hooks.append(ProgressHook(epochs))
-    make_batch = BatchMaker(dataset, cache, info.device, flips=str(train_cfg["flips"]), seed=seed)
 
     epoch_seconds, data_seconds, images = [], 0.0, 0
     for epoch in range(start_epoch, epochs):
-        order = ddp.epoch_order(usable, seed, epoch)
+        order = ddp.epoch_order(views, seed, epoch)
         batches = ddp.rank_batches(order, batch_size, info.rank, info.world_size)
         make_batch.set_epoch(epoch)
         state.epoch, state.batches_in_epoch = epoch, len(batches)

@@ -3,21 +3,23 @@
 Layout (one folder per finished epoch, each field one ``.npy`` file, rows in dataset order)::
 
     RUNDIR/log/epoch_0003/
-        image.<field>.npy     [I]      or [I, ...]   rows = CocoDataset image index
+        image.<field>.npy     [I]      or [I, ...]   rows = CocoDataset image index (sums over the image's views)
         object.<field>.npy    [A]      or [A, 4]     rows = CocoDataset annotation index
         unmatched.<field>.npy [U]      or [U, 4]     confident detections that match no annotation
         covered.npy           bool [I] images that were trained on in this epoch
 
 An epoch is written into ``epoch_0003.tmp-<pid>/`` through memory maps (so the writer holds no copy of the
 arrays in RAM), then renamed to ``epoch_0003/`` in one step: a folder without the ``.tmp`` suffix is always
-complete. With several processes each rank writes ``epoch_0003.rank<k>/`` and rank 0 merges them. Each
+complete. With several processes each rank writes ``epoch_0003.rank<k>/`` and rank 0 merges them (adding up the
+image fields of an image whose views were trained by several ranks). Each
 memory-mapped file has its disk blocks reserved as it is created, so a full disk raises ENOSPC there
 instead of SIGBUS when a page is first written.
 
 Stream normalisation: every ``*_sum`` field is a raw sum over anchors; ``image.num_pos`` and
 ``object.num_anchors`` are the counts. The training objective of an image is
 ``(loc_sum + pos_sum + neg_sum) / max(1, num_pos)`` (per image, never by batch history), and the
-per-object sums of an image add up to its ``loc_sum`` / ``pos_sum`` exactly. ``object.loc_kept`` /
+per-object sums of an image without tiles add up to its ``loc_sum`` / ``pos_sum`` exactly. An image with tiles
+(``detdiff.data.views``) gets the sums over all its views, and each object's fields come from its owner view only. ``object.loc_kept`` /
 ``object.cls_kept`` are the losses of one anchor per object, the one whose box is ``pred_box``.
 """
 
@@ -138,13 +140,20 @@ class LossLogWriter:
                 objects: dict[str, np.ndarray], unmatched: dict[str, np.ndarray] | None = None) -> None:
         """Record one batch: ``image[field][k]`` belongs to dataset image ``image_index[k]``, likewise objects.
 
-        ``unmatched`` rows carry their dataset ``image_index`` as a field.
+        An image seen in several views (its whole view and tiles, in this batch or another) gets the sum of their
+        image fields. ``unmatched`` rows carry their dataset ``image_index`` as a field.
         """
         if self._tmp is None:
             raise RuntimeError("LossLogWriter.process called before reset(epoch)")
-        self._arrays["covered"][image_index] = True
+        covered = self._arrays["covered"]
+        seen, inverse = np.unique(np.asarray(image_index, np.int64), return_inverse=True)
+        before = np.asarray(covered[seen])
         for name in IMAGE_FIELDS:
-            self._arrays[f"image.{name}"][image_index] = image[name]
+            arr = self._arrays[f"image.{name}"]
+            total = np.zeros(len(seen), dtype=arr.dtype)
+            np.add.at(total, inverse, np.asarray(image[name], dtype=arr.dtype))
+            arr[seen] = np.where(before, arr[seen], 0) + total
+        covered[seen] = True
         if len(object_index):
             for name in OBJECT_FIELDS:
                 self._arrays[f"object.{name}"][object_index] = objects[name]
@@ -180,16 +189,17 @@ def merge_rank_epochs(log_dir: str | Path, epoch: int, world_size: int) -> Path:
     shutil.rmtree(tmp, ignore_errors=True)
     tmp.mkdir(parents=True)
     covers = [np.load(p / "covered.npy") for p in parts]
-    if np.any(np.sum(covers, axis=0) > 1):
-        raise RuntimeError(f"epoch {epoch}: an image was trained by more than one process")
     obj_owner = None
     for prefix, fields in (("image", IMAGE_FIELDS), ("object", OBJECT_FIELDS)):
         for name in fields:
             stacked = [np.load(p / f"{prefix}.{name}.npy", mmap_mode="r") for p in parts]
             out = np.array(stacked[0])
             for k, arr in enumerate(stacked[1:], start=1):
-                if prefix == "image":
+                if prefix == "image":               # views of one image may have gone to several ranks: add up
                     rows = covers[k]
+                    both = rows & np.any(covers[:k], axis=0)
+                    out[both] += arr[both]
+                    rows = rows & ~both
                 else:
                     if obj_owner is None:
                         obj_owner = [np.load(p / "object.num_anchors.npy") >= 0 for p in parts]

@@ -48,7 +48,7 @@ import numpy as np
 import torch
 
 from detdiff.data.coco import CocoDataset
-from detdiff.data.views import logged_view_sides, plan_tiles, small_boxes
+from detdiff.data.views import ViewTable, logged_view_sides, plan_tiles, small_boxes, whole_view_scale
 
 AUTO = "auto"
 VIEW_MULTIPLE = 32
@@ -139,17 +139,19 @@ def dimension_clusters(wh: np.ndarray, k: int, seed: int = 0) -> np.ndarray:
     return centres[np.argsort(centres.prod(axis=1), kind="stable")]
 
 
-def choose_anchor_shapes(dataset: CocoDataset, image_size: int, strides: list[int]) -> tuple[list, str]:
-    """``model.anchor_shapes``: dimension clusters of the boxes in the view, three per level, and the reason.
+def choose_anchor_shapes(dataset: CocoDataset, image_size: int, strides: list[int],
+                         tile_scale: float = 0.0, min_object_px: float = 16.0) -> tuple[list, str]:
+    """``model.anchor_shapes``: dimension clusters of the boxes as the detector is trained on them (in the whole
+    views, and in the tiles at ``tile_scale``: :mod:`detdiff.data.views`), three per level, and the reason.
 
     A shape smaller than :data:`MIN_ANCHOR_STRIDES` times its level's stride is enlarged to it (aspect kept):
     anchors narrower than the spacing of their grid leave a box between two grid points with no anchor at
     IoU >= 0.5. Measured on a 300-image warehouse set at a 160 px view: without the floor AP50 0.60 and the
     in-sample wrong-class AUROC 0.73, with the fixed grid anchors 0.71 and 0.85."""
     num_levels = len(strides)
-    rows = ~dataset.iscrowd
-    long_side = np.maximum(dataset.widths, dataset.heights)[dataset.ann_image_index[rows]].astype(np.float64)
-    wh = dataset.boxes[rows, 2:] * (image_size / long_side)[:, None]
+    grid, owner = plan_tiles(dataset, image_size, tile_scale, min_object_px)
+    views = ViewTable.build(dataset, whole_view_scale(dataset, image_size), grid, owner, image_size)
+    wh = (views.target_box[:, 2:] - views.target_box[:, :2]).astype(np.float64)
     k = ANCHORS_PER_LEVEL * num_levels
     centres = dimension_clusters(np.maximum(wh, 1.0), k)
     level_stride = np.repeat(np.asarray(strides, dtype=np.float64), ANCHORS_PER_LEVEL)
@@ -160,7 +162,8 @@ def choose_anchor_shapes(dataset: CocoDataset, image_size: int, strides: list[in
     inter = np.minimum(wh[:, None, 0], centres[None, :, 0]) * np.minimum(wh[:, None, 1], centres[None, :, 1])
     iou = inter / (wh.prod(axis=1)[:, None] + centres.prod(axis=1)[None, :] - inter)
     mean_iou = float(iou.max(axis=1).mean()) if len(wh) else float("nan")
-    reason = (f"{k} dimension clusters of the box sizes in the view (mean best IoU {mean_iou:.2f}), "
+    where = "the view and its tiles" if grid.num_tiles else "the view"
+    reason = (f"{k} dimension clusters of the box sizes in {where} (mean best IoU {mean_iou:.2f}), "
               f"smallest three on the finest level, none under {MIN_ANCHOR_STRIDES} strides of its level")
     return shapes, reason
 
@@ -288,7 +291,10 @@ def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe |
     if not (~dataset.iscrowd).any():
         out["model"]["anchor_shapes"] = None
         return out
-    shapes, reason = choose_anchor_shapes(dataset, int(out["data"]["image_size"]), [int(x) for x in out["model"]["strides"]])
+    tile_scale = out["data"].get("tile_scale")
+    shapes, reason = choose_anchor_shapes(dataset, int(out["data"]["image_size"]), [int(x) for x in out["model"]["strides"]],
+                                          0.0 if _is_auto(tile_scale) else float(tile_scale or 0.0),
+                                          float(out["recipe"]["min_object_px"]))
     out["model"]["anchor_shapes"] = shapes
     if recipe is not None:
         recipe.reasons["model.anchor_shapes"] = reason

@@ -44,8 +44,10 @@ COCOEVAL_S_PER_ITEM = 1.0e-4
 DETECTIONS_PER_BOX = 4.0
 #: Bytes per detection in detections.json (122-124 in those audits).
 DETECTION_BYTES = 125
-#: Analysis + tables seconds: fixed and per box, fitted to six audits of 1,381-42,254 boxes (0.3-5.3 s).
-ANALYSIS_FIXED_S, ANALYSIS_S_PER_BOX = 0.15, 1.1e-4
+#: Analysis + tables seconds: fixed (mostly importing the analysis modules at first use: 3.4 s for the first
+#: analysis of a 300-image run in a fresh process, 0.4 s for the next) and per box, fitted to seven audits of
+#: 1,381-42,254 boxes (0.3-5.3 s).
+ANALYSIS_FIXED_S, ANALYSIS_S_PER_BOX = 1.0, 1.0e-4
 #: Analysis memory above the process: per box and per box and epoch (bench_analysis_scale.py: 21.5k boxes and
 #: 8 epochs 0.84 GiB peak, 86k boxes 0.99 GiB, 21.5k boxes and 32 epochs 0.86 GiB).
 ANALYSIS_BYTES_PER_BOX, ANALYSIS_BYTES_PER_BOX_EPOCH = 2500, 40
@@ -305,18 +307,22 @@ def _small_objects(plan: Plan, dataset: CocoDataset, config: dict[str, Any], rec
     long_side = np.maximum(dataset.widths, dataset.heights)[dataset.ann_image_index[~dataset.iscrowd]]
     largest = int(math.ceil(float(long_side.max()) / VIEW_MULTIPLE) * VIEW_MULTIPLE)
     wanted = float(np.quantile(px * size / np.maximum(sides, 1e-6), 1 - SMALL_SHARE_OK))
-    view = int(min(largest, math.ceil(wanted / VIEW_MULTIPLE) * VIEW_MULTIPLE))
-    at_view = float((box_view_sides(dataset, view) < px).mean())
-    plan.small.update({"larger_view": view, "share_at_larger_view": round(at_view, 4),
+    needed = int(min(largest, math.ceil(wanted / VIEW_MULTIPLE) * VIEW_MULTIPLE))   # all but 5% at px or more
+    view = min(needed, 2 * size)                                                    # one step: at most double
+    plan.small.update({"view_for_95pct": needed, "larger_view": view,
+                       "share_at_larger_view": round(float((box_view_sides(dataset, view) < px).mean()), 4),
                        "budget_limited": any(t.startswith("data.image_size") for t in recipe.traded)})
-    if view > size:
-        est = recipe.estimate
-        detector = float(est.get("detector_training_s", plan.seconds.get("detector", 0.0)))
-        budget = (detector * (view / size) ** 2 + float(est.get("crop_models_s", 0.0))) / 60
-        grows = (not recipe.reasons.get("data.image_size", "given").startswith("given")
-                 and view <= int(config["recipe"]["max_view"]))           # the recipe enlarges the view with time
-        plan.small["flag"] = f"--image-size {view}" + (f" (or --budget {math.ceil(budget)})" if grows else "")
-        plan.small["cost"] = f"about {(view / size) ** 2:.1f}x the detector time"
+    if view <= size:
+        return
+    est, growth = recipe.estimate, (view / size) ** 2
+    detector = plan.seconds.get("detector", 0.0)
+    budget = (float(est.get("detector_training_s", 0.0)) * growth + float(est.get("crop_models_s", 0.0))) / 60
+    grows = (not recipe.reasons.get("data.image_size", "given").startswith("given")
+             and view <= int(config["recipe"]["max_view"]) and budget > 0)      # the recipe enlarges the view itself
+    plan.small["flag"] = f"--image-size {view}" + (f" (or --budget {math.ceil(budget)})" if grows else "")
+    plan.small["cost"] = (f"{plan.small['share_at_larger_view']:.0%} left under {px:g} px, the detector's "
+                          f"{_duration(detector)} become about {_duration(detector * growth)}"
+                          + (f"; {needed} px would leave {SMALL_SHARE_OK:.0%}" if needed > view else ""))
 
 
 def plan_audit(dataset: CocoDataset, config: dict[str, Any], recipe, rundir: str | Path) -> Plan:
@@ -339,6 +345,11 @@ def plan_audit(dataset: CocoDataset, config: dict[str, Any], recipe, rundir: str
     return plan
 
 
+def _duration(seconds: float) -> str:
+    """Seconds under a minute, else minutes with one decimal."""
+    return f"{seconds:.0f} s" if seconds < 59.5 else f"{seconds / 60:.1f} min"
+
+
 def format_plan(plan: Plan) -> str:
     """The plan as printed before decoding: disk, time, memory and small objects, a few aligned lines."""
     gb = size_text
@@ -348,8 +359,8 @@ def format_plan(plan: Plan) -> str:
              f"  {'disk':<8} {gb(plan.disk_total)} in all" + (f", {gb(already)} of it already there" if already else "")
              + f"; {gb(plan.free)} free on {plan.rundir}",
              f"  {'':<8} {disk}",
-             f"  {'time':<8} {plan.total_seconds / 60:.1f} min: "
-             + " · ".join(f"{k} {v / 60:.1f}" for k, v in plan.seconds.items()) + " min",
+             f"  {'time':<8} {_duration(plan.total_seconds)}: "
+             + " · ".join(f"{k} {_duration(v)}" for k, v in plan.seconds.items()),
              f"  {'memory':<8} peak about {gb(plan.memory['peak'])} (training {gb(plan.memory['training'])}, "
              f"analysis {gb(plan.memory['analysis'])}), plus up to {gb(plan.memory['mapped'])} of mapped cache pages"]
     small = plan.small
@@ -360,7 +371,7 @@ def format_plan(plan: Plan) -> str:
         text += (f", too small for the detector at {limit} (the crop models judge them at full resolution; lint and "
                  f"descriptors cover every box)")
         if "flag" in small:
-            text += f"; {small['flag']} buys the resolution, {small['cost']}"
+            text += f"; {small['flag']} buys resolution: {small['cost']}"
         else:
             text += "; no larger view helps: they are that small in the files"
     lines.append(f"  {'small':<8} {text}")

@@ -93,10 +93,10 @@ def print_plan(plan: dict) -> None:
     if not plan.get("parts"):
         print("  plan: none in run.json")
         return
-    parts = "  ".join(f"{name} {p:.0f}/{m:.0f}" for name, (p, m) in plan["parts"].items())
+    parts = "  ".join(f"{name} {p:.1f}/{m:.1f}" for name, (p, m) in plan["parts"].items())
     ratio, (low, high) = plan["ratio"], PLAN_RATIO
     verdict = "met" if ratio is not None and low <= ratio <= high else "NOT met"
-    print(f"  plan (projected/measured s): {parts}; total {plan['projected']:.0f}/{plan['measured']:.0f}")
+    print(f"  plan (projected/measured s): {parts}; total {plan['projected']:.1f}/{plan['measured']:.1f}")
     print(f"  goal plan measured/projected in {low}-{high}: {verdict} ({ratio})")
 
 

@@ -128,7 +128,7 @@ class Plan:
 
     def to_json(self) -> dict[str, Any]:
         parts = {k: round(v, 2) for k, v in self.seconds.items()}
-        return {"rundir": str(self.rundir), "image_size": self.image_size, "num_images": self.num_images,
+        return {"image_size": self.image_size, "num_images": self.num_images,
                 "disk_bytes": {"parts": self.disk, "total": self.disk_total, "on_disk": self.on_disk,
                                "more": self.more_bytes, "free": self.free, "basis": self.disk_basis},
                 "time_seconds": {"parts": parts, "total": round(sum(parts.values()), 2), "basis": self.seconds_basis},
@@ -392,7 +392,7 @@ def read_plan(rundir: str | Path) -> Plan:
     data = json.loads((Path(rundir) / PLAN_FILE).read_text())
     disk, seconds, memory = data["disk_bytes"], data["time_seconds"], dict(data["memory_bytes"])
     memory_basis = memory.pop("basis")
-    return Plan(Path(data["rundir"]), int(data["image_size"]), int(data["num_images"]), disk["parts"],
+    return Plan(Path(rundir), int(data["image_size"]), int(data["num_images"]), disk["parts"],
                 disk["basis"], disk["on_disk"], int(disk["free"]), seconds["parts"], seconds["basis"], memory,
                 memory_basis, data["small_objects"], data["warmup"])
 

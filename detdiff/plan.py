@@ -25,12 +25,16 @@ import resource
 import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from detdiff.data.coco import CocoDataset
 from detdiff.stages import InsufficientSpaceError, size_text
+
+if TYPE_CHECKING:
+    from detdiff.plan_warmup import Warmup
+    from detdiff.recipe import Recipe
 
 PLAN_FILE = "plan.json"
 #: meta.npz bytes per image (scale float64, usable bool, pixel float32 x 4, image id int64, reduction uint8).
@@ -110,7 +114,8 @@ class Plan:
         """The largest view side (a multiple of 32 below this one) at which the disk parts would fit, if any: the
         cache's views take ``3 S^2`` bytes per image, the rest does not depend on the view."""
         views = 3 * self.image_size ** 2 * self.num_images
-        room = self.free - (self.more_bytes - min(views, max(0, self.disk["image cache"] - self.on_disk["image cache"])))
+        cache_left = max(0, self.disk["image cache"] - self.on_disk["image cache"])
+        room = self.free - (self.more_bytes - min(views, cache_left))
         if self.num_images == 0 or room <= 0:
             return None
         side = int(math.sqrt(room / (3 * self.num_images)) // VIEW_MULTIPLE * VIEW_MULTIPLE)
@@ -169,7 +174,8 @@ def _bytes_in(paths: list[Path]) -> int:
     return total
 
 
-def _disk(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm, boxes: int, detections: float) -> None:
+def _disk(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm: Warmup, boxes: int,
+          detections: float) -> None:
     """Disk parts, their basis and what each already has in the run folder."""
     from detdiff.train.resources import log_bytes
 
@@ -213,8 +219,8 @@ def _complete_cache(dataset: CocoDataset, config: dict[str, Any], rundir: Path) 
         dataset, cache_dir, int(config["data"]["image_size"]), **cache_options(config)) is not None
 
 
-def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe, warm, work: np.ndarray,
-             boxes: int, detections: float) -> None:
+def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, warm: Warmup,
+             work: np.ndarray, boxes: int, detections: float) -> None:
     """Seconds per stage from the warm-up's measurements and the audit's step counts."""
     from detdiff.crossfit.folds import assign_folds, fold_steps
     from detdiff.data.image_cache import build_image_cache
@@ -270,7 +276,8 @@ def _rss_bytes() -> int:
         return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * 1024
 
 
-def _memory(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm, work: np.ndarray, base: int) -> None:
+def _memory(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm: Warmup, work: np.ndarray,
+            base: int) -> None:
     """Projected peak resident memory: the larger of training, analysis and decoding, plus mapped cache pages."""
     from detdiff.data.cache_shards import FIXED_PIXELS
 
@@ -292,7 +299,7 @@ def _memory(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm, work
         "mapped": "the image cache's memory-mapped pages (page cache: counted in RSS, given back under pressure)"}
 
 
-def _small_objects(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe) -> None:
+def _small_objects(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: Recipe) -> None:
     """The share of boxes under ``recipe.min_object_px`` in the view, and the view or budget that would fix it."""
     from detdiff.recipe import box_view_sides
 
@@ -325,7 +332,7 @@ def _small_objects(plan: Plan, dataset: CocoDataset, config: dict[str, Any], rec
                           + (f"; {needed} px would leave {SMALL_SHARE_OK:.0%}" if needed > view else ""))
 
 
-def plan_audit(dataset: CocoDataset, config: dict[str, Any], recipe, rundir: str | Path) -> Plan:
+def plan_audit(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, rundir: str | Path) -> Plan:
     """Project the audit of ``dataset`` with the resolved ``config`` and its ``recipe`` into ``rundir``."""
     from detdiff.data.cache_shards import decode_work
     from detdiff.plan_warmup import run_warmup
@@ -397,7 +404,7 @@ def read_plan(rundir: str | Path) -> Plan:
                 memory_basis, data["small_objects"], data["warmup"])
 
 
-def plan_and_check(dataset: CocoDataset, config: dict[str, Any], recipe, rundir: Path) -> Plan:
+def plan_and_check(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, rundir: Path) -> Plan:
     """Plan the audit, print and write the plan, and stop with one line when the disk cannot hold it."""
     plan = plan_audit(dataset, config, recipe, rundir)
     print(format_plan(plan), flush=True)

@@ -32,6 +32,7 @@ import torch
 from torch import nn
 
 from detdiff.data.coco import CocoDataset
+from detdiff.data.image_cache import ImageCache, build_image_cache
 
 #: Images decoded in the warm-up (fewer when the dataset has fewer).
 SAMPLE_IMAGES = 12
@@ -62,7 +63,7 @@ class Warmup:
     feature_channels: int = 0
 
     def to_json(self) -> dict[str, Any]:
-        return {k: (round(v, 6) if isinstance(v, float) else v) for k, v in vars(self).items()}
+        return {k: (float(f"{v:.4g}") if isinstance(v, float) else v) for k, v in vars(self).items()}
 
 
 def sample_rows(work: np.ndarray, count: int = SAMPLE_IMAGES) -> np.ndarray:
@@ -87,10 +88,8 @@ def _fastest_seconds(step: Callable[[], None], sync: Callable[[], None]) -> floa
 
 
 def _time_decode(dataset: CocoDataset, config: dict[str, Any], rows: np.ndarray, options: dict[str, Any],
-                 tmp: Path):
+                 tmp: Path) -> tuple[CocoDataset, ImageCache, float]:
     """Build the sample cache (after one untimed image) and return it with the seconds it took."""
-    from detdiff.data.image_cache import build_image_cache
-
     size = int(config["data"]["image_size"])
     threads = cv2.getNumThreads()
     cv2.setNumThreads(1)                        # as in a decode worker
@@ -106,7 +105,7 @@ def _time_decode(dataset: CocoDataset, config: dict[str, Any], rows: np.ndarray,
     return sub, cache, seconds
 
 
-def _time_detector(sub: CocoDataset, cache, config: dict[str, Any], warm: Warmup, tmp: Path) -> None:
+def _time_detector(sub: CocoDataset, cache: ImageCache, config: dict[str, Any], warm: Warmup, tmp: Path) -> None:
     """Time a detector training step and an eval-mode forward on the sample cache; measure what a step keeps."""
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
@@ -173,7 +172,7 @@ def _time_detector(sub: CocoDataset, cache, config: dict[str, Any], warm: Warmup
     warm.feature_channels = int(outputs["features"][0].shape[1])
 
 
-def _time_crop_model(sub: CocoDataset, cache, config: dict[str, Any], warm: Warmup) -> None:
+def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any], warm: Warmup) -> None:
     """Time a crop-model training step and a prediction per row on the sample's stored crops."""
     from detdiff.crossfit import crop_model as cm
     from detdiff.crossfit.crops import crop_extent

@@ -7,12 +7,12 @@ scores (higher = harder), linked to causes, and used to flag suspected label err
 
 __version__ = "0.1.0"
 
-__all__ = ["audit", "open_run", "check", "AuditRun", "__version__"]
+__all__ = ["audit", "plan_audit", "open_run", "check", "AuditRun", "__version__"]
 
 
 def __getattr__(name: str):
     """Import the API lazily so ``import detdiff`` stays quick (torch loads only when needed)."""
-    if name in ("audit", "open_run", "check", "AuditRun"):
+    if name in ("audit", "plan_audit", "open_run", "check", "AuditRun"):
         from detdiff import api
 
         return getattr(api, name)

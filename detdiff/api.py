@@ -98,6 +98,22 @@ def audit(annotations: str | Path, images: str | Path, out: str | Path, *, confi
     return AuditRun(Path(out))
 
 
+def plan_audit(annotations: str | Path, images: str | Path, out: str | Path, *, config: str | Path | None = None,
+               epochs: int | None = None, image_size: int | None = None, batch_size: int | None = None,
+               device: str | None = None, seed: int | None = None, flips: str | None = None,
+               budget: float | None = None):
+    """What :func:`audit` with the same arguments would cost on this machine, without doing it: lint, recipe and
+    plan (``detdiff audit --plan``). Returns the :class:`detdiff.plan.Plan` (disk, seconds and memory per part,
+    small objects), also written as ``out/plan.json``; raises when the disk cannot hold the audit."""
+    from detdiff.pipeline import run_audit, run_overrides
+    from detdiff.plan import read_plan
+
+    overrides = run_overrides(image_size=image_size, epochs=epochs, batch_size=batch_size, device=device, seed=seed,
+                              flips=flips, budget=budget)
+    run_audit(annotations, images, out, config_path=config, overrides=overrides, progress=False, plan_only=True)
+    return read_plan(out)
+
+
 def open_run(rundir: str | Path) -> AuditRun:
     """Open an existing run folder."""
     rundir = Path(rundir)

@@ -63,7 +63,10 @@ def _cmd_audit(args: argparse.Namespace) -> int:
     result = run_audit(args.annotations, args.images, args.out, config_path=args.config,
                        overrides=_overrides(args), resume=args.resume, progress=not args.quiet,
                        make_report=not args.no_report, top=args.top,
-                       thumbnails=False if args.no_thumbnails else None)
+                       thumbnails=False if args.no_thumbnails else None, plan_only=args.plan)
+    if args.plan:
+        print(f"plan only: {Path(args.out) / 'plan.json'} written; nothing decoded or trained "
+              f"(run again without --plan for the audit)")
     if result.summary:
         print(result.summary)
     return 0
@@ -163,6 +166,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="training time to fit the recipe to, estimated on this machine before training (default: "
                         "config recipe.budget_minutes); over it, epochs and then the view size are reduced")
     p.add_argument("--resume", action="store_true", help="continue after the last finished epoch")
+    p.add_argument("--plan", action="store_true",
+                   help="dry run: lint, fit the recipe and print the projected disk use, wall time and memory on this "
+                        "machine (from a short measured warm-up) and the share of boxes too small for the view, write "
+                        "plan.json, then stop before decoding or training")
     p.add_argument("--no-report", action="store_true", help="stop after the tables (write no HTML report or plots)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     _add_report_options(p)

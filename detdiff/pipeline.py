@@ -184,7 +184,8 @@ def _saved_recipe(rundir: Path, config: dict):
 
 def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path, config: dict, resume: bool,
                   progress: bool, timings: dict[str, float]):
-    """Main process only: folder, lint + ingest, recipe and config (each written to ``rundir``)."""
+    """Main process only: folder, lint + ingest, recipe, config and plan (each written to ``rundir``)."""
+    from detdiff.plan import plan_and_check
     from detdiff.recipe import fit_recipe, format_recipe
 
     t0 = time.perf_counter()
@@ -208,6 +209,7 @@ def _prepare_main(annotations: str | Path, images_dir: str | Path, rundir: Path,
             write_json_atomic(rundir / RECIPE_FILE, recipe.to_json())
         print(format_recipe(recipe), flush=True)
         save_config(config, rundir / "config.yaml")
+        plan_and_check(dataset, config, recipe, rundir)     # prints, writes plan.json; refuses a disk too small
     timings["recipe_s"] = time.perf_counter() - t0 - timings["check_s"]
     return dataset, config
 
@@ -217,27 +219,15 @@ def _build_cache(dataset: CocoDataset, rundir: Path, config: dict, dist, progres
     which the main rank joins (``detdiff.data.cache_shards``: the run folder must be on a filesystem every machine
     shares). Either way through the resumable :func:`detdiff.data.image_cache.build_image_cache`. A failure on any
     rank stops every rank with the same error."""
-    from detdiff.crossfit.crops import crop_bytes
-    from detdiff.data.image_cache import build_image_cache, cache_bytes
+    from detdiff.data.image_cache import build_image_cache
+    from detdiff.plan import cache_disk_bytes, cache_options
 
     size, cache_dir = int(config["data"]["image_size"]), rundir / "cache"
-    options = {"max_pixels": int(config["data"]["max_pixels"]),
-               "pixel_stats": bool(config["analysis"]["pixel_descriptors"]),
-               "with_crops": bool(config["crossfit"]["enabled"]),
-               "reduced_decode": bool(config["data"]["reduced_decode"]),
-               "tiles": tile_options(config)}
-    needed = (cache_bytes(dataset.num_images, size)
-              + (crop_bytes(dataset.num_annotations) if options["with_crops"] else 0))
-    with stage("decode", rundir, "cache", needed):
+    options = cache_options(config)
+    with stage("decode", rundir, "cache", cache_disk_bytes(dataset, config)):
         if not dist.distributed:
             return build_image_cache(dataset, cache_dir, size, progress=progress, **options)
         return _build_cache_shards(dataset, cache_dir, size, options, dist, progress)
-
-
-def tile_options(config: dict) -> dict[str, float]:
-    """The image cache's tile settings from a resolved config (``data.tile_scale``: 0 or null = no tiles)."""
-    return {"scale": float(config["data"].get("tile_scale") or 0.0),
-            "min_object_px": float(config["recipe"]["min_object_px"])}
 
 
 def _build_cache_shards(dataset: CocoDataset, cache_dir: Path, size: int, options: dict, dist, progress: bool):
@@ -274,14 +264,16 @@ def _build_cache_shards(dataset: CocoDataset, cache_dir: Path, size: int, option
 def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Path, *,
               config_path: str | Path | None = None, overrides: dict | None = None, resume: bool = False,
               progress: bool = True, make_report: bool = True, top: int | None = None,
-              thumbnails: bool | None = None) -> AuditResult:
-    """Run the whole audit into ``rundir`` and return where the results are.
+              thumbnails: bool | None = None, plan_only: bool = False) -> AuditResult:
+    """Run the whole audit into ``rundir`` and return where the results are (``plan_only``: stop after the plan,
+    :mod:`detdiff.plan`, before decoding anything).
 
     With ``torchrun`` every process calls this; only the main process lints, evaluates, analyses and reports;
     every process decodes its share of the image cache and trains its share of each epoch. A failure on the
     main process before training is passed to the others, so no process waits forever.
     """
     from detdiff.data.probes import PROBES_FILE, plant_missing_probes, probes_record, training_copy
+    from detdiff.plan import projected_vs_measured
     from detdiff.train.distributed import all_true, barrier, broadcast_object, init_distributed, shutdown
     from detdiff.train.evaluate import final_pass
     from detdiff.train.loop import train_and_log
@@ -302,6 +294,9 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
         raise failure
     if message is not None:
         raise RunFolderError(f"main process stopped before training: {message}")
+    if plan_only:
+        shutdown()
+        return AuditResult(rundir, None, {}, "")
     barrier()
     if not all_true((rundir / DATASET_FILE).is_file(), dist):
         raise RunFolderError(f"{rundir}: not visible to every process; with several machines the run folder (and "
@@ -356,6 +351,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
         report_path = report(rundir, top=top, thumbnails=thumbnails, config=config)
         timings["report_s"] = time.perf_counter() - t4
     run_info["timings"] = timings
+    run_info["plan_seconds"] = projected_vs_measured(rundir, timings)
     with stage("summary", rundir):
         write_json_atomic(rundir / "run.json", run_info)
     from detdiff.report.summary import terminal_summary

@@ -14,7 +14,8 @@ What "the same outputs" means (:func:`compare_runs`):
 - tensor-identical: checkpoint.pt (model, optimizer, scheduler, epoch, RNG states);
 - identical but for timings: run.json without ``timings``, ``train_seconds``, ``images_per_second``,
   ``data_loading_share`` and keys ending in ``_seconds``; self_check.json without keys ending in
-  ``_seconds``; recipe.json without ``estimate_seconds`` (times measured on the machine);
+  ``_seconds``; recipe.json without ``estimate_seconds`` (times measured on the machine); plan.json without
+  its measured times, memory, free and already-written bytes (:data:`PLAN_JSON_MEASURED`);
   report/index.html with the training-time and images-per-second cells masked.
 """
 
@@ -60,6 +61,9 @@ STAGES = ("check", "decode", "train", "evaluate", "crossfit", "summary", "analys
 REPO = Path(__file__).resolve().parent.parent
 SIZE_SLACK = 512
 RUN_JSON_TIMINGS = ("timings", "train_seconds", "images_per_second", "data_loading_share")
+#: What plan.json holds of this machine and moment: the warm-up's measurements, memory, free and already-written
+#: bytes (its time_seconds go with the _seconds suffix).
+PLAN_JSON_MEASURED = ("warmup", "memory_bytes", "free", "on_disk", "more")
 _HTML_TIMINGS = re.compile(r"(<td>(?:training time|images per second)</td>\s*<td>)[^<]*(</td>)")
 
 
@@ -185,9 +189,9 @@ def _same_file(rel: str, a: Path, b: Path) -> bool:
         import torch
 
         return _same_tensors(torch.load(a, weights_only=True), torch.load(b, weights_only=True))
-    if rel in ("run.json", "self_check.json", "recipe.json"):
+    if rel in ("run.json", "self_check.json", "recipe.json", "plan.json"):
         drop = {"run.json": (RUN_JSON_TIMINGS, "_seconds"), "self_check.json": ((), "_seconds"),
-                "recipe.json": (("estimate_seconds",), None)}[rel]
+                "recipe.json": (("estimate_seconds",), None), "plan.json": (PLAN_JSON_MEASURED, "_seconds")}[rel]
         return _drop(json.loads(a.read_text()), *drop) == _drop(json.loads(b.read_text()), *drop)
     if name == "index.html":
         return _HTML_TIMINGS.sub(r"\1\2", a.read_text()) == _HTML_TIMINGS.sub(r"\1\2", b.read_text())

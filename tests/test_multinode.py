@@ -19,7 +19,7 @@ from detdiff.data.cache_shards import SHARDS_DIR, build_cache_shard, merge_cache
 from detdiff.data.coco import build_dataset, load_saved_dataset, read_coco_json
 from detdiff.data.image_cache import CROPS_FILE, IMAGES_FILE, TILES_FILE, build_image_cache
 from detdiff.data.scenarios import generate_demo
-from detdiff.pipeline import tile_options
+from detdiff.plan import tile_options
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLog
 from fault_injection import DecodeInterrupt
 

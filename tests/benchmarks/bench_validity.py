@@ -8,7 +8,9 @@ image ``neg_score``) and of baselines (last epoch, box count, class rarity, rand
 the list's length against the planted count and its true precision; and the audit's own self-measured figures
 beside them. Goals (issue #13): wrong-class AUROC >= 0.95, loose box >= 0.90, missing box (image) >= 0.85;
 precision@k wrong class >= 0.8, missing box >= 0.6; AP50 >= 0.7; each list <= 2x the planted count;
-self-measured figures within 0.05 of the truth; an 800-image audit within 10 minutes.
+self-measured figures within 0.05 of the truth; an 800-image audit within 10 minutes. Also printed per run: the
+plan's projected seconds beside the measured ones (``run.json["plan_seconds"]``, :mod:`detdiff.plan`) and their
+ratio, against the goal measured / projected within 0.75-1.25 (stored in ``validity.json`` as ``plan_ratio``).
 
     .venv/bin/python tests/benchmarks/bench_validity.py [--scenarios warehouse aerial digits] [--seeds 1 2]
         [--num-images 800] [--out DIR] [--set section.key=value ...]
@@ -31,6 +33,8 @@ from detdiff.pipeline import run_audit
 GOALS = {("wrong_class", "auroc_evidence"): 0.95, ("loose_box", "auroc_evidence"): 0.90,
          ("missing_box", "auroc_evidence"): 0.85, ("wrong_class", "precision_at_k"): 0.8,
          ("missing_box", "precision_at_k"): 0.6}
+#: Goal of the plan's wall-time projection: measured / projected within these bounds.
+PLAN_RATIO = (0.75, 1.25)
 COLUMNS = [("planted", "planted", "{}"), ("evidence", "auroc_evidence", "{:.3f}"), ("stream", "auroc", "{:.3f}"),
            ("last ep", "auroc_last_epoch", "{:.3f}"), ("boxes", "auroc_box_count", "{:.3f}"),
            ("rarity", "auroc_rarity", "{:.3f}"), ("random", "auroc_random", "{:.3f}"),
@@ -60,8 +64,10 @@ def run_one(scenario: str, seed: int, num_images: int, out: Path, overrides: dic
     scores = score_against_truth(rundir, demo.truth, seed=seed)
     metrics = json.loads((rundir / "metrics.json").read_text())
     run_info = json.loads((rundir / "run.json").read_text())
+    plan = run_info.get("plan_seconds") or {}
     return {"scenario": scenario, "seed": seed, "images": num_images, "generate_s": t1 - t0, "audit_s": t2 - t1,
             "AP50": metrics.get("AP50"), "AP50_small": metrics.get("AP50_small"), "timings": run_info.get("timings"),
+            "plan_seconds": plan, "plan_ratio": plan.get("ratio"),
             "recipe": json.loads((rundir / "recipe.json").read_text()).get("settings"), "scores": scores}
 
 
@@ -79,6 +85,19 @@ def print_run(result: dict) -> None:
         value = result["scores"][kind].get(key)
         verdict = "met" if value is not None and value == value and value >= goal else "NOT met"
         print(f"  goal {kind} {key} >= {goal}: {verdict} ({value if value is None else round(value, 3)})")
+    print_plan(result.get("plan_seconds") or {})
+
+
+def print_plan(plan: dict) -> None:
+    """The plan's projected seconds beside the measured ones, per stage, and the goal on their ratio."""
+    if not plan.get("parts"):
+        print("  plan: none in run.json")
+        return
+    parts = "  ".join(f"{name} {p:.1f}/{m:.1f}" for name, (p, m) in plan["parts"].items())
+    ratio, (low, high) = plan["ratio"], PLAN_RATIO
+    verdict = "met" if ratio is not None and low <= ratio <= high else "NOT met"
+    print(f"  plan (projected/measured s): {parts}; total {plan['projected']:.1f}/{plan['measured']:.1f}")
+    print(f"  goal plan measured/projected in {low}-{high}: {verdict} ({ratio})")
 
 
 def main() -> None:

@@ -20,8 +20,9 @@ from detdiff.crossfit.crops import STORE
 from detdiff.data.coco import build_dataset, read_coco_json
 from detdiff.data.image_cache import build_image_cache
 from detdiff.data.scenarios import generate_demo
+from detdiff.data.views import logged_view_sides, plan_tiles
 from detdiff.plan import (PLAN_FILE, cache_disk_bytes, cache_options, format_plan, plan_audit, projected_vs_measured,
-                          read_plan, write_plan)
+                          read_plan, tile_options, write_plan)
 from detdiff.recipe import box_view_sides, fit_recipe
 
 SIZE = 64
@@ -76,8 +77,14 @@ def test_plan_contents(demo, tmp_path):
     long_side = np.maximum(demo.dataset.widths, demo.dataset.heights)[demo.dataset.ann_image_index[rows]]
     assert np.allclose(sides, np.sqrt(demo.dataset.boxes[rows, 2] * demo.dataset.boxes[rows, 3]) * SIZE / long_side)
     px = float(demo.config["recipe"]["min_object_px"])
-    assert plan.small["small"] == int((sides < px).sum()) > 0
-    assert plan.small["share"] == pytest.approx((sides < px).mean(), abs=1e-4)
+    # ... counted in the view that logs each box: a tile enlarges a small box, never shrinks it
+    grid, owner = plan_tiles(demo.dataset, SIZE, tile_options(demo.config)["scale"], px)
+    logged = logged_view_sides(demo.dataset, SIZE, grid, owner)
+    assert np.all(logged >= sides - 1e-9)
+    assert plan.small["small"] == int((logged < px).sum()) <= int((sides < px).sum())
+    assert plan.small["share"] == pytest.approx((logged < px).mean(), abs=1e-4)
+    whole_only = {**demo.config, "data": {**demo.config["data"], "tile_scale": 0.0}}
+    assert plan_audit(demo.dataset, whole_only, demo.recipe, rundir).small["small"] == int((sides < px).sum()) > 0
     assert plan.small["flag"].startswith("--image-size ") and plan.small["larger_view"] > SIZE
     text = format_plan(plan)
     assert "--image-size" in text and f"{plan.small['share']:.0%} of the boxes" in text

@@ -153,7 +153,7 @@ def choose_anchor_shapes(dataset: CocoDataset, image_size: int, strides: list[in
     in-sample wrong-class AUROC 0.73, with the fixed grid anchors 0.71 and 0.85."""
     num_levels = len(strides)
     grid, owner = plan_tiles(dataset, image_size, tile_scale, min_object_px)
-    views = ViewTable.build(dataset, whole_view_scale(dataset, image_size), grid, owner, image_size)
+    views = ViewTable.build(dataset, whole_view_scale(dataset, image_size), grid, owner)
     wh = (views.target_box[:, 2:] - views.target_box[:, :2]).astype(np.float64)
     k = ANCHORS_PER_LEVEL * num_levels
     centres = dimension_clusters(np.maximum(wh, 1.0), k)

@@ -52,7 +52,7 @@ def test_every_annotation_is_logged_by_exactly_one_view_and_tiles_clip_like_torc
     rng = np.random.default_rng(2)
     ds = _photo_dataset(list(rng.uniform(6, 60, 90)) + list(rng.uniform(300, 900, 10)), per_image=10, seed=3)
     grid, owner = plan_tiles(ds, 256, 1.5, 16)
-    table = ViewTable.build(ds, whole_view_scale(ds, 256), grid, owner, 256)
+    table = ViewTable.build(ds, whole_view_scale(ds, 256), grid, owner)
     logged = np.bincount(table.target_row[table.target_logged], minlength=ds.num_annotations)
     assert np.all(logged == 1)
     view = np.repeat(np.arange(table.num_views), np.diff(table.offsets))

@@ -211,11 +211,10 @@ class ViewTable:
         return np.flatnonzero(np.asarray(usable_images, bool)[self.image]).astype(np.int64)
 
     @classmethod
-    def build(cls, dataset: CocoDataset, image_scale: np.ndarray, grid: TileGrid, tile_owner: np.ndarray,
-              image_size: int) -> ViewTable:
+    def build(cls, dataset: CocoDataset, image_scale: np.ndarray, grid: TileGrid, tile_owner: np.ndarray) -> ViewTable:
         """The views of ``dataset``: whole views at ``image_scale [I]`` (the cache's), then the tiles of ``grid``;
         ``tile_owner [A]`` is :func:`plan_tiles`'s owner tile per annotation (``-1``: the whole view)."""
-        num_i, size = dataset.num_images, int(image_size)
+        num_i = dataset.num_images
         train = ~dataset.iscrowd & (dataset.boxes[:, 2:] > 0).all(axis=1)
         xyxy = dataset.boxes_xyxy()
         owner = np.where(tile_owner >= 0, num_i + tile_owner, dataset.ann_image_index)

@@ -157,4 +157,4 @@ def cache_views(dataset: CocoDataset, cache: ImageCache) -> ViewTable:
     """The views of ``cache`` (whole views at the cache's scales, then its tiles) with their targets."""
     grid = cache.grid if cache.grid is not None else TileGrid.empty(cache.image_size)
     owner = cache.tile_owner if cache.tile_owner is not None else np.full(dataset.num_annotations, -1, np.int64)
-    return ViewTable.build(dataset, cache.scale, grid, owner, cache.image_size)
+    return ViewTable.build(dataset, cache.scale, grid, owner)

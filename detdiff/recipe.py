@@ -34,8 +34,9 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
   the budget is chosen; epochs shrink for tiles down to half their wanted number (at least ``recipe.min_epochs``).
   Measured on the held-out streetcam set (800 photos, 59% of boxes under 16 px): tiles at 0.475x with epochs cut
   from 34 to 9 raised the missing-box evidence 0.58 -> 0.63 but lowered AP50 0.26 -> 0.16 (large objects seen
-  9 times instead of 34), hence the floor. With tiles the view does not grow. The ``auto`` budget grows with the
-  share of images that need tiles (:func:`budget_seconds`). What stays too small is said, with the flag that buys
+  9 times instead of 34), hence the floor. Time still left grows the view as above (tiles recounted at each size).
+  The ``auto`` budget grows with the share of images that need tiles even in the largest view the recipe may
+  choose (:func:`budget_seconds`). What stays too small is said, with the flag that buys
   resolution.
 """
 
@@ -315,7 +316,8 @@ def budget_seconds(cfg: dict[str, Any], images: int, tiled_share: float = 0.0) -
 
 
 def tiled_image_share(dataset: CocoDataset, image_size: int, cfg: dict[str, Any]) -> float:
-    """Share of the images that get tiles at ``recipe.max_tile_scale`` (:func:`detdiff.data.views.plan_tiles`)."""
+    """Share of the images that get tiles at ``recipe.max_tile_scale`` (:func:`detdiff.data.views.plan_tiles`) in a
+    view of ``image_size`` (the recipe passes the largest it may choose: the images no view can serve)."""
     grid, _ = plan_tiles(dataset, image_size, float(cfg["max_tile_scale"]), float(cfg["min_object_px"]))
     return len(np.unique(grid.image)) / max(dataset.num_images, 1)
 
@@ -347,7 +349,7 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     """Shrink the ``auto`` settings until the estimated training fits the budget, then spend what is left on tiles or
     a larger view (module docstring)."""
     cfg, train, crossfit, data = config["recipe"], config["train"], config["crossfit"], config["data"]
-    tiled = tiled_image_share(dataset, int(data["image_size"]), cfg) if auto_tiles else 0.0
+    tiled = tiled_image_share(dataset, _largest_view(dataset, cfg), cfg) if auto_tiles else 0.0
     budget = budget_seconds(cfg, images, tiled)
     if _is_auto(cfg["budget_minutes"]) and tiled > 0:
         recipe.notes.append(f"budget {budget / 60:.1f} min: {cfg['seconds_per_image']} s per image, x{1 + tiled:.2f} "
@@ -395,12 +397,19 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     wanted = int(data["image_size"])
     if auto_tiles:
         _fit_tiles(dataset, config, recipe, images, detector_budget, detector_seconds, views, auto_epochs)
-    while (auto_view and not recipe.traded and not float(data["tile_scale"] or 0)
-           and int(data["image_size"]) + VIEW_MULTIPLE <= _largest_view(dataset, cfg)):
-        data["image_size"] = int(data["image_size"]) + VIEW_MULTIPLE    # time left: more pixels for small objects
+    cap = float(data["tile_scale"] or 0)
+
+    def resize(size: int) -> None:                 # a view of ``size`` px, its tiles recounted
+        data["image_size"] = size
+        views["count"] = images + tile_count(dataset, size, cap, target)
+
+    while auto_view and not recipe.traded and int(data["image_size"]) + VIEW_MULTIPLE <= _largest_view(dataset, cfg):
+        resize(int(data["image_size"]) + VIEW_MULTIPLE)      # time left: more pixels for small objects
         if detector_seconds() > detector_budget:
-            data["image_size"] = int(data["image_size"]) - VIEW_MULTIPLE
+            resize(int(data["image_size"]) - VIEW_MULTIPLE)
             break
+    if auto_tiles and cap > 0 and int(data["image_size"]) > wanted:
+        recipe.reasons["data.tile_scale"] = tile_reason(dataset, int(data["image_size"]), cap, target)
     if int(data["image_size"]) > wanted:
         first = recipe.reasons["data.image_size"].removeprefix(f"{wanted} px: ")
         recipe.reasons["data.image_size"] = (f"{data['image_size']} px: enlarged from {wanted} px with the budget's "
@@ -415,6 +424,18 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     if det_s + crop_s > budget * 1.05:
         recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over the budget of "
                             f"{budget / 60:.1f} min, with nothing left to trade; raise --budget or set smaller values")
+
+
+def tile_reason(dataset: CocoDataset, size: int, cap: float, target: float) -> str:
+    """The reason line of ``data.tile_scale = cap`` at view ``size``: tiles, images, and the share of boxes judged."""
+    grid, owner = plan_tiles(dataset, size, cap, target)
+    if grid.num_tiles == 0:
+        return f"{cap:g}: no box is under {target:g} px across in the {size} px view"
+    judged = float((logged_view_sides(dataset, size, grid, owner) >= target).mean())
+    whole = float((box_view_sides(dataset, size) >= target).mean())
+    return (f"{cap:g}: {grid.num_tiles} tiles of {size} px for {len(np.unique(grid.image))} images with boxes under "
+            f"{target:g} px in the view, enlarged up to {cap:g}x; {judged:.0%} of the boxes are at least {target:g} px "
+            f"across in the view that logs them ({whole:.0%} in whole views alone)")
 
 
 def _fit_tiles(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, images: int, detector_budget: float,
@@ -441,13 +462,7 @@ def _fit_tiles(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, ima
             fits = detector_seconds() <= detector_budget
         if fits:
             data["tile_scale"] = cap
-            grid, owner = plan_tiles(dataset, size, cap, target)
-            judged = float((logged_view_sides(dataset, size, grid, owner) >= target).mean())
-            whole = float((box_view_sides(dataset, size) >= target).mean())
-            recipe.reasons["data.tile_scale"] = (
-                f"{cap:g}: {tiles} tiles of {size} px for {len(np.unique(grid.image))} images with boxes under "
-                f"{target:g} px in the view, enlarged up to {cap:g}x; {judged:.0%} of the boxes are at least {target:g} "
-                f"px across in the view that logs them ({whole:.0%} in whole views alone)")
+            recipe.reasons["data.tile_scale"] = tile_reason(dataset, size, cap, target)
             if cap < float(cfg["max_tile_scale"]):
                 recipe.traded.append(f"data.tile_scale {cfg['max_tile_scale']} -> {cap:g} for the budget")
             if int(train["epochs"]) < epochs:

@@ -64,7 +64,7 @@ RUN_JSON_TIMINGS = ("timings", "train_seconds", "images_per_second", "data_loadi
 #: What plan.json holds of this machine and moment: the warm-up's measurements, memory, free and already-written
 #: bytes (its time_seconds go with the _seconds suffix).
 PLAN_JSON_MEASURED = ("warmup", "memory_bytes", "free", "on_disk", "more")
-_HTML_TIMINGS = re.compile(r"(<td>(?:training time|images per second)</td>\s*<td>)[^<]*(</td>)")
+_HTML_TIMINGS = re.compile(r"(<td>(?:training time|views per second \(whole views and tiles\))</td>\s*<td>)[^<]*(</td>)")
 
 
 @dataclass

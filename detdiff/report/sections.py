@@ -341,7 +341,7 @@ def _settings_section(page: Page) -> Markup:
              ("images folder", info.get("images_dir", "")), ("device", info.get("device", "")),
              ("epochs trained", fmt(info.get("epochs_done", ""))),
              ("training time", f"{fmt(seconds)} s" if isinstance(seconds, (int, float)) else ""),
-             ("images per second", fmt(info.get("images_per_second", ""))),
+             ("views per second (whole views and tiles)", fmt(info.get("images_per_second", ""))),
              ("report", f"top {page.top} per list, thumbnails {'on' if page.thumbnails else 'off'}")]
     config_rows = [[el("td", None, el("code", None, k)), el("td", None, el("code", None, json.dumps(v)))]
                    for k, v in _flatten(page.run.config)]

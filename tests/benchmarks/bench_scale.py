@@ -171,7 +171,8 @@ def phase_train(args: dict) -> dict:
     index = np.random.default_rng(0).permutation(cache.usable_indices)[:(args["steps"] + 2) * batch]
     rows = np.sort(index)
     in_ram = dataclasses.replace(cache, images=np.ascontiguousarray(cache.images[rows]), scale=cache.scale[rows],
-                                 usable=cache.usable[rows], pixel=cache.pixel[rows], crops=None)
+                                 usable=cache.usable[rows], pixel=cache.pixel[rows], crops=None, tiles=None, grid=None,
+                                 tile_owner=None)                   # whole views only, as the cache was built
     cpu = torch.device("cpu")
     makers = {"warm": (BatchMaker(ds, cache, cpu, flips="horizontal"), index),
               "evicted": (BatchMaker(ds, cache, cpu, flips="horizontal"), index),

@@ -65,6 +65,14 @@ def group_pairs(offsets: np.ndarray, *, chunk: int = PAIR_CHUNK) -> Iterator[tup
         first = last
 
 
+def concatenated_ranges(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """``[starts[0], ..., starts[0] + counts[0] - 1, starts[1], ...]`` (int64): the rows of several contiguous groups,
+    group by group, without a Python loop."""
+    starts, counts = np.asarray(starts, np.int64), np.asarray(counts, np.int64)
+    offsets = np.cumsum(counts) - counts
+    return np.repeat(starts - offsets, counts) + np.arange(int(counts.sum()), dtype=np.int64)
+
+
 def pair_iou(boxes_xyxy: np.ndarray, rows_i: np.ndarray, rows_j: np.ndarray) -> np.ndarray:
     """IoU of ``boxes_xyxy[rows_i]`` with ``boxes_xyxy[rows_j]`` elementwise ``[P]`` (definition as in
     torchvision.ops.box_iou, without the full matrix); 0 where the union is empty."""

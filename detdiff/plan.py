@@ -158,11 +158,11 @@ def cache_options(config: dict[str, Any]) -> dict[str, Any]:
 
 
 def tile_count(dataset: CocoDataset, config: dict[str, Any]) -> int:
-    """Tiles the cache will cut for ``config`` (:func:`detdiff.data.views.plan_tiles`)."""
-    from detdiff.data.views import plan_tiles
+    """Tiles the cache will cut for ``config`` (:func:`detdiff.recipe.tile_count` with the resolved settings)."""
+    from detdiff.recipe import tile_count as count_at
 
     options = tile_options(config)
-    return plan_tiles(dataset, int(config["data"]["image_size"]), options["scale"], options["min_object_px"])[0].num_tiles
+    return count_at(dataset, int(config["data"]["image_size"]), options["scale"], options["min_object_px"])
 
 
 def cache_disk_bytes(dataset: CocoDataset, config: dict[str, Any]) -> int:

@@ -24,6 +24,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
+from detdiff.boxes import concatenated_ranges
 from detdiff.data.coco import CocoDataset
 
 #: Overlap of neighbouring tiles, as a share of the tile side: a box of up to this many tile px fits whole in one.
@@ -80,7 +81,7 @@ def _grid(widths: np.ndarray, heights: np.ndarray, scale: np.ndarray, images: np
     ny = np.where(span_h <= size, 1, -(-(span_h - size) // step) + 1)
     count = nx * ny
     owner = np.repeat(np.arange(len(images)), count)
-    local = np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count)
+    local = concatenated_ranges(np.zeros(len(count), np.int64), count)
     kx, ky = local % nx[owner], local // nx[owner]
     x0 = np.minimum(kx * step, np.maximum(span_w[owner] - size, 0))
     y0 = np.minimum(ky * step, np.maximum(span_h[owner] - size, 0))
@@ -106,8 +107,7 @@ def _pairs(dataset: CocoDataset, rows: np.ndarray, grid: TileGrid) -> tuple[np.n
     image = dataset.ann_image_index[rows]
     count = last[image] - first[image]
     pair_row = np.repeat(rows, count)
-    pair_tile = np.repeat(first[image], count) + (np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count,
-                                                                                          count))
+    pair_tile = concatenated_ranges(first[image], count)
     return pair_row, pair_tile
 
 
@@ -246,9 +246,7 @@ class ViewTable:
 
     def targets(self, views: np.ndarray) -> np.ndarray:
         """Target positions (into ``target_*``) of ``views``, view by view (int64)."""
-        count = self.offsets[views + 1] - self.offsets[views]
-        return (np.repeat(self.offsets[views], count)
-                + np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count)).astype(np.int64)
+        return concatenated_ranges(self.offsets[views], self.offsets[views + 1] - self.offsets[views])
 
     def to_original(self, boxes_xyxy: np.ndarray, views: np.ndarray) -> np.ndarray:
         """``[n, 4]`` xyxy view px of ``views [n]`` -> xyxy original px."""

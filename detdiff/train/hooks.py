@@ -18,6 +18,7 @@ import torch
 from torch import nn
 from tqdm import tqdm
 
+from detdiff.boxes import concatenated_ranges
 from detdiff.data.coco import CocoDataset
 from detdiff.model.losses import LossStreams
 from detdiff.train import distributed as ddp
@@ -76,8 +77,7 @@ def _parts_of_boxes(ann_xyxy: np.ndarray, image_offsets: np.ndarray, image_index
     are the dataset's boxes, image ``i``'s at ``image_offsets[i]:image_offsets[i + 1]``."""
     count = image_offsets[image_index + 1] - image_offsets[image_index]
     det = np.repeat(np.concatenate([boxes_xywh[:, :2], boxes_xywh[:, :2] + boxes_xywh[:, 2:]], axis=1), count, axis=0)
-    rows = np.repeat(image_offsets[image_index], count) + np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count,
-                                                                                                count)
+    rows = concatenated_ranges(image_offsets[image_index], count)
     ann = ann_xyxy[rows]
     inter = np.prod(np.clip(np.minimum(det[:, 2:], ann[:, 2:]) - np.maximum(det[:, :2], ann[:, :2]), 0, None), axis=1)
     share = inter / np.maximum(np.prod(det[:, 2:] - det[:, :2], axis=1), 1e-9)

@@ -54,7 +54,7 @@ def _overrides(args: argparse.Namespace) -> dict:
 
     return run_overrides(image_size=args.image_size, epochs=args.epochs, batch_size=args.batch_size,
                          device=args.device, seed=args.seed, threads=args.threads, flips=args.flips,
-                         budget=args.budget)
+                         budget=args.budget, cache_codec=args.cache_codec)
 
 
 def _cmd_audit(args: argparse.Namespace) -> int:
@@ -165,6 +165,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--budget", type=float, default=None, metavar="MINUTES",
                    help="training time to fit the recipe to, estimated on this machine before training (default: "
                         "config recipe.budget_minutes); over it, epochs and then the view size are reduced")
+    p.add_argument("--cache-codec", choices=["auto", "raw", "jpeg"], default=None,
+                   help="how the decoded image cache is stored (default: config data.cache_codec, auto): raw uint8 "
+                        "rows, or jpeg, about a tenth of the disk, decoded again on every read")
     p.add_argument("--resume", action="store_true", help="continue after the last finished epoch")
     p.add_argument("--plan", action="store_true",
                    help="dry run: lint, fit the recipe and print the projected disk use, wall time and memory on this "

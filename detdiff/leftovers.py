@@ -47,7 +47,7 @@ TEMP_NAMES: tuple[TempName, ...] = (
     TempName("", r"[\w.-]+\.(?:csv|json|parquet)\.tmp", "detdiff/analysis/tables.py"),
     TempName("", r"dataset\.npz\.tmp\.npz", "detdiff/data/coco.py"),
     TempName("cache", rf"\.write-probe-{_PID}", "detdiff/data/image_cache.py"),
-    TempName("cache", rf"(?:images|crops|tiles)\.u8\.tmp-{_PID}", "detdiff/data/cache_shards.py"),
+    TempName("cache", rf"(?:images|crops|tiles)\.(?:u8|jpgrows)\.tmp-{_PID}", "detdiff/data/cache_shards.py"),
     TempName("cache", rf"(?:meta|decode-progress)\.tmp-{_PID}\.npz", "detdiff/data/image_cache.py"),
     TempName("cache", rf"(?:problems|fingerprint)\.json\.tmp-{_PID}", "detdiff/atomic.py"),
     TempName(SHARD_FOLDERS, rf"\.write-probe-{_PID}", "detdiff/data/image_cache.py"),

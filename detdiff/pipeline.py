@@ -140,11 +140,11 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
 
 def run_overrides(*, image_size: int | None = None, epochs: int | None = None, batch_size: int | None = None,
                   device: str | None = None, seed: int | None = None, threads: int | None = None,
-                  flips: str | None = None, budget: float | None = None) -> dict:
+                  flips: str | None = None, budget: float | None = None, cache_codec: str | None = None) -> dict:
     """Config overrides from the command line or the API (``None`` = keep the config file's value)."""
     if flips is not None and flips not in FLIP_CHOICES:
         raise ConfigError(f"flips must be one of {', '.join(FLIP_CHOICES)}, got {flips!r}")
-    return {"data": {"image_size": image_size},
+    return {"data": {"image_size": image_size, "cache_codec": cache_codec},
             "train": {"epochs": epochs, "batch_size": batch_size, "device": device, "seed": seed,
                       "threads": threads, "flips": flips},
             "recipe": {"budget_minutes": budget}}

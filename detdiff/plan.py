@@ -41,6 +41,9 @@ PLAN_FILE = "plan.json"
 META_BYTES_PER_IMAGE = 8 + 1 + 16 + 8 + 1
 #: The cache's small files: npy and zip headers of meta.npz, fingerprint.json, an empty problems.json.
 CACHE_FIXED_BYTES = 8192
+#: JPEG cache rows (codec jpeg) per pixel, for the decode stage's room check before any row is stored: an upper
+#: figure of 0.30-0.33 measured on 128-320 px views and tiles of photos and 0.47-0.54 on 64 px crops (quality 90).
+ENCODED_BYTES_PER_PX = 0.6
 #: COCOeval seconds per ground-truth box plus detection: 89-135 us measured with pycocotools on synthetic sets
 #: of 300-2,000 images with 5-50 boxes and 20-100 detections each (this project's 2-core machine).
 COCOEVAL_S_PER_ITEM = 1.0e-4
@@ -92,6 +95,7 @@ class Plan:
     memory_basis: dict[str, str] = field(default_factory=dict)
     small: dict[str, Any] = field(default_factory=dict)
     warmup: dict[str, Any] = field(default_factory=dict)
+    codec: str = "raw"                  # data.cache_codec as the cache will be built
 
     @property
     def disk_total(self) -> int:
@@ -112,13 +116,14 @@ class Plan:
 
     def fitting_view(self) -> int | None:
         """The largest view side (a multiple of 32 below this one) at which the disk parts would fit, if any: the
-        cache's views take ``3 S^2`` bytes per image, the rest does not depend on the view."""
-        views = 3 * self.image_size ** 2 * self.num_images
+        cache's views take ``3 S^2`` bytes per image (JPEG rows: about the whole cache part, in proportion to
+        ``S^2``), the rest does not depend on the view."""
+        views = 3 * self.image_size ** 2 * self.num_images if self.codec == "raw" else self.disk["image cache"]
         cache_left = max(0, self.disk["image cache"] - self.on_disk["image cache"])
         room = self.free - (self.more_bytes - min(views, cache_left))
-        if self.num_images == 0 or room <= 0:
+        if self.num_images == 0 or room <= 0 or views <= 0:
             return None
-        side = int(math.sqrt(room / (3 * self.num_images)) // VIEW_MULTIPLE * VIEW_MULTIPLE)
+        side = int(self.image_size * math.sqrt(room / views) // VIEW_MULTIPLE * VIEW_MULTIPLE)
         return side if VIEW_MULTIPLE <= side < self.image_size else None
 
     def refusal(self) -> str:
@@ -127,6 +132,8 @@ class Plan:
         view = self.fitting_view()
         smaller = (f"--image-size {view} would fit (the image cache's views shrink with the square of the side)"
                    if view else "no smaller --image-size fits")
+        if self.codec == "raw":
+            smaller += "; --cache-codec jpeg stores the image cache in about a tenth of the bytes"
         return (f"{self.rundir}: the audit needs about {size_text(self.more_bytes)} more on this disk (largest part: "
                 f"{largest}, {size_text(self.disk[largest])}) but only {size_text(self.free)} are free; {smaller}; "
                 f"or free some space or choose an --out folder on a larger disk")
@@ -138,7 +145,7 @@ class Plan:
                                "more": self.more_bytes, "free": self.free, "basis": self.disk_basis},
                 "time_seconds": {"parts": parts, "total": round(sum(parts.values()), 2), "basis": self.seconds_basis},
                 "memory_bytes": {**self.memory, "basis": self.memory_basis},
-                "small_objects": self.small, "warmup": self.warmup}
+                "small_objects": self.small, "warmup": self.warmup, "cache_codec": self.codec}
 
 
 def tile_options(config: dict[str, Any]) -> dict[str, float]:
@@ -154,7 +161,13 @@ def cache_options(config: dict[str, Any]) -> dict[str, Any]:
             "pixel_stats": bool(config["analysis"]["pixel_descriptors"]),
             "with_crops": bool(config["crossfit"]["enabled"]),
             "reduced_decode": bool(config["data"]["reduced_decode"]),
-            "tiles": tile_options(config)}
+            "tiles": tile_options(config), "codec": cache_codec(config)}
+
+
+def cache_codec(config: dict[str, Any]) -> str:
+    """``data.cache_codec`` as the cache is built: ``auto`` (a config the recipe did not resolve) is raw."""
+    codec = str(config["data"].get("cache_codec") or "auto")
+    return "raw" if codec == "auto" else codec
 
 
 def tile_count(dataset: CocoDataset, config: dict[str, Any]) -> int:
@@ -165,17 +178,38 @@ def tile_count(dataset: CocoDataset, config: dict[str, Any]) -> int:
     return count_at(dataset, int(config["data"]["image_size"]), options["scale"], options["min_object_px"])
 
 
-def cache_disk_bytes(dataset: CocoDataset, config: dict[str, Any]) -> int:
+def cache_disk_bytes(dataset: CocoDataset, config: dict[str, Any], encoded: tuple[float, float] | None = None) -> int:
     """Bytes of ``RUNDIR/cache``: the views (``images.u8``) and tiles (``tiles.u8``), one crop per box when the crop
     models are on (``crops.u8``), ``meta.npz`` and a few kB of JSON. The plan and the decode stage's room check both
-    use it."""
-    from detdiff.crossfit.crops import crop_bytes
-    from detdiff.data.image_cache import cache_bytes
+    use it. With codec jpeg the rows take ``encoded`` = (bytes per view or tile, bytes per crop) as the plan's
+    warm-up measured them, or :data:`ENCODED_BYTES_PER_PX` of their pixels (the room check, before any is made)."""
+    from detdiff.crossfit.crops import STORE
 
-    crops = crop_bytes(dataset.num_annotations) if config["crossfit"]["enabled"] else 0
+    size, crops_on = int(config["data"]["image_size"]), bool(config["crossfit"]["enabled"])
     views = dataset.num_images + tile_count(dataset, config)
-    return (cache_bytes(views, int(config["data"]["image_size"])) + crops
-            + META_BYTES_PER_IMAGE * dataset.num_images + CACHE_FIXED_BYTES)
+    crops = dataset.num_annotations if crops_on else 0
+    if cache_codec(config) == "raw":
+        per_view, per_crop = 3.0 * size * size, 3.0 * STORE * STORE
+    else:
+        per_view, per_crop = encoded or (ENCODED_BYTES_PER_PX * size * size, ENCODED_BYTES_PER_PX * STORE * STORE)
+        views_meta = 16 * (views + crops)                  # each row's offset and length in meta.npz
+        return int(per_view * views + per_crop * crops + views_meta + META_BYTES_PER_IMAGE * dataset.num_images
+                   + CACHE_FIXED_BYTES)
+    return int(per_view * views + per_crop * crops + META_BYTES_PER_IMAGE * dataset.num_images + CACHE_FIXED_BYTES)
+
+
+def _cache_part(dataset: CocoDataset, config: dict[str, Any], warm: Warmup, size: int,
+                crops_on: bool) -> tuple[int, list[str], str]:
+    """The image cache's disk part: bytes, where it lies, basis."""
+    if cache_codec(config) == "raw":
+        return (cache_disk_bytes(dataset, config), ["cache"],
+                f"{size}x{size}x3 bytes per view or tile" + (", a 64x64x3 crop per box" if crops_on else "")
+                + ", meta.npz")
+    measured = (warm.encoded_view_bytes, warm.encoded_crop_bytes) if warm.encoded_view_bytes else None
+    basis = (f"JPEG rows as the warm-up's sample stored them: {size_text(warm.encoded_view_bytes)} per view or tile"
+             + (f", {size_text(warm.encoded_crop_bytes)} per crop" if crops_on else "") if measured else
+             f"JPEG rows at {ENCODED_BYTES_PER_PX} bytes per px (none measured)")
+    return cache_disk_bytes(dataset, config, measured), ["cache"], basis + ", meta.npz"
 
 
 def free_bytes(folder: Path) -> int:
@@ -201,9 +235,7 @@ def _disk(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm: Warmup
     crops_on = bool(config["crossfit"]["enabled"])
     classes, top = dataset.num_classes, int(config["report"]["top"])
     parts = {
-        "image cache": (cache_disk_bytes(dataset, config), ["cache"],
-                        f"{size}x{size}x3 bytes per image" + (", a 64x64x3 crop per box" if crops_on else "")
-                        + ", meta.npz"),
+        "image cache": _cache_part(dataset, config, warm, size, crops_on),
         "training log": (log_bytes(dataset, config), ["log"],
                          f"{int(config['train']['epochs']) + 1} epochs of per-image and per-box fields"),
         "checkpoint": (warm.checkpoint_bytes, ["checkpoint.pt"],
@@ -361,7 +393,7 @@ def plan_audit(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, run
 
     rundir = Path(rundir)
     base = _rss_bytes()
-    plan = Plan(rundir, int(config["data"]["image_size"]), dataset.num_images)
+    plan = Plan(rundir, int(config["data"]["image_size"]), dataset.num_images, codec=cache_codec(config))
     work = decode_work(dataset, plan.image_size, bool(config["data"]["reduced_decode"]))
     warm = run_warmup(dataset, config, work, cache_options(config))
     plan.warmup = warm.to_json()
@@ -424,7 +456,7 @@ def read_plan(rundir: str | Path) -> Plan:
     memory_basis = memory.pop("basis")
     return Plan(Path(rundir), int(data["image_size"]), int(data["num_images"]), disk["parts"],
                 disk["basis"], disk["on_disk"], int(disk["free"]), seconds["parts"], seconds["basis"], memory,
-                memory_basis, data["small_objects"], data["warmup"])
+                memory_basis, data["small_objects"], data["warmup"], data.get("cache_codec", "raw"))
 
 
 def plan_and_check(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, rundir: Path) -> Plan:

@@ -61,6 +61,8 @@ class Warmup:
     param_bytes: int = 0
     checkpoint_bytes: int = 0
     feature_channels: int = 0
+    encoded_view_bytes: float = 0.0     # codec jpeg: mean bytes of a stored whole view or tile row (0: raw rows)
+    encoded_crop_bytes: float = 0.0     # codec jpeg: mean bytes of a stored crop row
 
     def to_json(self) -> dict[str, Any]:
         return {k: (float(f"{v:.4g}") if isinstance(v, float) else v) for k, v in vars(self).items()}
@@ -239,6 +241,11 @@ def run_warmup(dataset: CocoDataset, config: dict[str, Any], work: np.ndarray, o
             sub, cache, seconds = _time_decode(dataset, config, rows, options, Path(tmp))
             warm = Warmup(len(rows), seconds, seconds / max(float(work[rows].sum()), 1.0),
                           seconds / max(len(rows), 1))
+            if cache.codec != "raw":
+                warm.encoded_view_bytes = ((cache.images.nbytes + (cache.tiles.nbytes if cache.tiles is not None
+                                                                   else 0)) / max(cache.num_images + cache.num_tiles, 1))
+                if cache.crops is not None and len(cache.crops):
+                    warm.encoded_crop_bytes = cache.crops.nbytes / len(cache.crops)
             if cache.usable.any():
                 _time_detector(sub, cache, config, warm, Path(tmp))
                 if options["with_crops"]:

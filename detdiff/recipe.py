@@ -280,7 +280,10 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
     _restate_traded(recipe, config, dataset)
     if boxes:
         _say_small_objects(dataset, config, recipe)
-    for key in ("data.image_size", "data.tile_scale", "train.epochs", "crossfit.epochs", "model.anchor_shapes"):
+    if _is_auto(config["data"].get("cache_codec", AUTO)):
+        config["data"]["cache_codec"], recipe.reasons["data.cache_codec"] = choose_cache_codec(dataset, config)
+    for key in ("data.image_size", "data.tile_scale", "data.cache_codec", "train.epochs", "crossfit.epochs",
+                "model.anchor_shapes"):
         section, name = key.split(".")
         recipe.settings[key] = config[section][name]
         recipe.reasons.setdefault(key, "given in the config or on the command line")
@@ -303,6 +306,28 @@ def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe |
     if recipe is not None:
         recipe.reasons["model.anchor_shapes"] = reason
     return out
+
+
+def raw_cache_bytes(dataset: CocoDataset, config: dict[str, Any]) -> int:
+    """Bytes of the image cache's rows stored raw: ``3 S^2`` per whole view and tile, a 64x64x3 crop per box when
+    the crop models are on."""
+    from detdiff.crossfit.crops import crop_bytes
+
+    size, tile_scale = int(config["data"]["image_size"]), config["data"].get("tile_scale")
+    cap = float(tile_scale) if isinstance(tile_scale, (int, float)) else 0.0
+    views = dataset.num_images + tile_count(dataset, size, cap, float(config["recipe"]["min_object_px"]))
+    crops = crop_bytes(dataset.num_annotations) if config["crossfit"]["enabled"] else 0
+    return 3 * size * size * views + crops
+
+
+def choose_cache_codec(dataset: CocoDataset, config: dict[str, Any]) -> tuple[str, str]:
+    """``data.cache_codec`` for ``auto``: raw rows (read without decoding) while they take at most
+    ``recipe.raw_cache_gb``, JPEG rows (a tenth to a twentieth of the bytes) beyond; with its reason."""
+    raw, limit = raw_cache_bytes(dataset, config), float(config["recipe"]["raw_cache_gb"]) * 1e9
+    codec = "raw" if raw <= limit else "jpeg"
+    return codec, (f"{codec}: the raw rows would take {raw / 1e9:.1f} GB, {'within' if codec == 'raw' else 'over'} "
+                   f"recipe.raw_cache_gb {limit / 1e9:g} GB" + ("" if codec == "raw" else
+                                                               "; JPEG rows take a tenth to a twentieth of that"))
 
 
 def budget_seconds(cfg: dict[str, Any], images: int, tiled_share: float = 0.0) -> float:

@@ -159,24 +159,28 @@ def _demo_dataset(root: Path, num_images: int = 24):
     return paths, build_dataset(read_coco_json(paths.annotations), images_dir=paths.images_dir)
 
 
-def test_interrupted_cache_build_decodes_only_the_rest_and_equals_a_clean_build(tmp_path, monkeypatch):
+@pytest.mark.parametrize("codec", ["raw", "jpeg"])
+def test_interrupted_cache_build_decodes_only_the_rest_and_equals_a_clean_build(tmp_path, monkeypatch, codec):
     _, dataset = _demo_dataset(tmp_path)
-    clean = build_image_cache(dataset, tmp_path / "clean", 64, max_pixels=10**8, progress=False, workers=1,
-                              with_crops=True)
+    options = dict(max_pixels=10**8, progress=False, workers=1, with_crops=True, codec=codec)
+    clean = build_image_cache(dataset, tmp_path / "clean", 64, **options)
     decode = DecodeInterrupt(monkeypatch, stop_after=10)
     monkeypatch.setattr(image_cache, "PROGRESS_EVERY_S", 3600.0)       # saved on the way out, not by time
     with pytest.raises(KeyboardInterrupt):
-        build_image_cache(dataset, tmp_path / "cache", 64, max_pixels=10**8, progress=False, workers=1,
-                          with_crops=True)
-    assert sorted(p.name for p in (tmp_path / "cache").iterdir()) == [
-        "crops.u8.partial", "decode-progress.npz", "images.u8.partial"]
+        build_image_cache(dataset, tmp_path / "cache", 64, **options)
+    names = image_cache.stored_names(codec)
+    assert sorted(p.name for p in (tmp_path / "cache").iterdir()) == sorted(
+        [names["crops"] + ".partial", "decode-progress.npz", names["images"] + ".partial"])
+    if codec == "jpeg":             # rows written after the last saved progress (a kill in between) are cut off
+        with open(tmp_path / "cache" / (names["images"] + ".partial"), "ab") as fh:
+            fh.write(b"half a row")
     decode.resume()
-    resumed = build_image_cache(dataset, tmp_path / "cache", 64, max_pixels=10**8, progress=False, workers=1,
-                                with_crops=True)
+    resumed = build_image_cache(dataset, tmp_path / "cache", 64, **options)
     assert decode.calls == list(range(10, dataset.num_images))
-    for name in ("images.u8", "crops.u8", "problems.json", "fingerprint.json"):
+    for name in (names["images"], names["crops"], "problems.json", "fingerprint.json"):
         assert (tmp_path / "cache" / name).read_bytes() == (tmp_path / "clean" / name).read_bytes(), name
     assert np.array_equal(resumed.pixel, clean.pixel, equal_nan=True) and np.array_equal(resumed.scale, clean.scale)
+    assert np.array_equal(resumed.images[:], clean.images[:]) and np.array_equal(resumed.crops[:], clean.crops[:])
     assert sorted(p.name for p in (tmp_path / "cache").iterdir()) == sorted(p.name for p in clean.cache_dir.iterdir())
 
 

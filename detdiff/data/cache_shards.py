@@ -28,9 +28,10 @@ import numpy as np
 
 from detdiff.crossfit.crops import CROPS_FILE, crop_bytes
 from detdiff.data.coco import CocoDataset
-from detdiff.data.image_cache import (FINGERPRINT_FILE, IMAGES_FILE, META_FILE, PROBLEMS_FILE, TILES_FILE,
-                                      ImageCache, _clear_for_build, _fingerprint, _publish, _tile_options,
-                                      build_image_cache, cache_bytes, draft_reductions, tile_meta)
+from detdiff.data.image_cache import (ENCODED_FILES, FINGERPRINT_FILE, IMAGES_FILE, META_FILE, PROBLEMS_FILE,
+                                      TILES_FILE, ImageCache, _clear_for_build, _fingerprint, _publish, _tile_options,
+                                      build_image_cache, cache_bytes, draft_reductions, encoded_meta, stored_names,
+                                      tile_meta)
 from detdiff.data.views import plan_tiles
 
 SHARDS_DIR = "shards"
@@ -82,7 +83,8 @@ def build_cache_shard(dataset: CocoDataset, cache_dir: str | Path, image_size: i
     folder = shard_dir(cache_dir, rank, world_size)
     part = dataset.subset_images(np.arange(bounds[rank], bounds[rank + 1]))
     build_image_cache(part, folder, image_size, **options)
-    for name in (IMAGES_FILE, CROPS_FILE, TILES_FILE, META_FILE, PROBLEMS_FILE, FINGERPRINT_FILE):
+    for name in (IMAGES_FILE, CROPS_FILE, TILES_FILE, *ENCODED_FILES.values(), META_FILE, PROBLEMS_FILE,
+                 FINGERPRINT_FILE):
         if (folder / name).is_file():
             _fsync(folder / name)
     _fsync(folder)
@@ -109,7 +111,8 @@ def _append(source: Path, target) -> None:
 
 def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: int, world_size: int, *,
                        max_pixels: int, pixel_stats: bool = True, with_crops: bool = False,
-                       reduced_decode: bool = True, tiles: dict[str, float] | None = None) -> ImageCache:
+                       reduced_decode: bool = True, tiles: dict[str, float] | None = None,
+                       codec: str = "raw") -> ImageCache:
     """Join the ``world_size`` complete shards of ``dataset`` into ``cache_dir`` and open it; the shards are removed.
 
     The result equals what :func:`build_image_cache` writes for the whole dataset with the same settings
@@ -123,36 +126,48 @@ def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: 
         if shard.num_images != bounds[k + 1] - bounds[k] or shard.image_size != image_size:
             raise ValueError(f"{folders[k]}: holds {shard.num_images} images of {shard.image_size} px, expected "
                              f"{bounds[k + 1] - bounds[k]} of {image_size}; delete {cache_dir} and run again")
-    largest = max(cache_bytes(s.num_images + s.num_tiles, image_size) + (s.crops.nbytes if s.crops is not None else 0)
-                  for s in shards)
+    largest = max(s.images.nbytes + (s.tiles.nbytes if s.tiles is not None else 0)
+                  + (s.crops.nbytes if s.crops is not None else 0) for s in shards)
     _clear_for_build(cache_dir, largest)
     metas = []
     for folder in folders:
         with np.load(folder / META_FILE) as meta:
-            metas.append({key: meta[key] for key in ("scale", "usable", "pixel", "reduction")})
+            metas.append({key: meta[key] for key in meta.files
+                          if key in ("scale", "usable", "pixel", "reduction") or key.endswith(("_offsets", "_lengths"))})
     problems = [{**p, "index": int(p["index"]) + int(bounds[k])} for k, s in enumerate(shards) for p in s.problems]
     del shards                                            # their memmaps are about to be deleted
-    images_tmp = cache_dir / f"{IMAGES_FILE}.tmp-{os.getpid()}"
-    crops_tmp = cache_dir / f"{CROPS_FILE}.tmp-{os.getpid()}" if with_crops else None
+    names = stored_names(codec)
+    images_tmp = cache_dir / f"{names['images']}.tmp-{os.getpid()}"
+    crops_tmp = cache_dir / f"{names['crops']}.tmp-{os.getpid()}" if with_crops else None
     tile_options = _tile_options(tiles)
     grid, tile_owner = plan_tiles(dataset, image_size, tile_options["scale"], tile_options["min_object_px"])
-    tiles_tmp = cache_dir / f"{TILES_FILE}.tmp-{os.getpid()}" if grid.num_tiles else None
+    tiles_tmp = cache_dir / f"{names['tiles']}.tmp-{os.getpid()}" if grid.num_tiles else None
+    rows: dict[str, tuple[np.ndarray, np.ndarray]] = {}        # codec jpeg: where each row lies in the joined file
     try:
-        for name, tmp in ((IMAGES_FILE, images_tmp), (CROPS_FILE, crops_tmp), (TILES_FILE, tiles_tmp)):
+        for kind, tmp in (("images", images_tmp), ("crops", crops_tmp), ("tiles", tiles_tmp)):
             if tmp is None:
                 continue
+            offsets, lengths = [], []
             with open(tmp, "wb", buffering=0) as out:          # unbuffered: copy_file_range writes beside it
-                for folder in folders:
+                for folder, meta in zip(folders, metas):
                     (folder / FINGERPRINT_FILE).unlink(missing_ok=True)   # the shard is no longer complete
-                    if (folder / name).is_file():                 # a shard whose images need no tile has none
-                        _append(folder / name, out)
-                        (folder / name).unlink()
-        if crops_tmp is not None and crops_tmp.stat().st_size != crop_bytes(dataset.num_annotations):
-            raise ValueError(f"{cache_dir}: the shards hold {crops_tmp.stat().st_size} bytes of crops, expected "
-                             f"{crop_bytes(dataset.num_annotations)}; delete {cache_dir} and run again")
-        if tiles_tmp is not None and tiles_tmp.stat().st_size != cache_bytes(grid.num_tiles, image_size):
-            raise ValueError(f"{cache_dir}: the shards hold {tiles_tmp.stat().st_size} bytes of tiles, expected "
-                             f"{cache_bytes(grid.num_tiles, image_size)}; delete {cache_dir} and run again")
+                    if f"{kind}_offsets" in meta:                 # JPEG rows: their offsets move by what is before
+                        offsets.append(meta[f"{kind}_offsets"] + os.fstat(out.fileno()).st_size)
+                        lengths.append(meta[f"{kind}_lengths"])
+                    if (folder / names[kind]).is_file():          # a shard whose images need no tile has none
+                        _append(folder / names[kind], out)
+                        (folder / names[kind]).unlink()
+            if codec != "raw":
+                rows[kind] = (np.concatenate(offsets or [np.zeros(0, np.int64)]),
+                              np.concatenate(lengths or [np.zeros(0, np.int64)]))
+        expected = {"crops": dataset.num_annotations if with_crops else 0, "tiles": grid.num_tiles}
+        for kind, tmp, row_bytes in (("crops", crops_tmp, crop_bytes(1)), ("tiles", tiles_tmp,
+                                                                            cache_bytes(1, image_size))):
+            held = (0 if tmp is None else len(rows[kind][0]) if codec != "raw"
+                    else tmp.stat().st_size // row_bytes)
+            if held != expected[kind]:
+                raise ValueError(f"{cache_dir}: the shards hold {held} rows of {kind}, expected {expected[kind]}; "
+                                 f"delete {cache_dir} and run again")
     except BaseException:
         for tmp in (images_tmp, crops_tmp, tiles_tmp):
             if tmp is not None:
@@ -161,10 +176,11 @@ def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: 
     joined = {key: np.concatenate([m[key] for m in metas]) for key in ("scale", "usable", "pixel", "reduction")}
     meta = {"scale": joined["scale"], "usable": joined["usable"], "pixel": joined["pixel"],
             "image_ids": dataset.image_ids, "image_size": np.int64(image_size), "reduction": joined["reduction"]}
-    meta |= tile_meta(grid, tile_owner)
-    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode, tiles)
-    maps = ({IMAGES_FILE: images_tmp} | ({CROPS_FILE: crops_tmp} if crops_tmp is not None else {})
-            | ({TILES_FILE: tiles_tmp} if tiles_tmp is not None else {}))
+    meta |= tile_meta(grid, tile_owner) | encoded_meta(codec, rows)
+    fingerprint = _fingerprint(dataset, image_size, max_pixels, pixel_stats, with_crops, reduced_decode, tiles,
+                               codec)
+    maps = ({names["images"]: images_tmp} | ({names["crops"]: crops_tmp} if crops_tmp is not None else {})
+            | ({names["tiles"]: tiles_tmp} if tiles_tmp is not None else {}))
     cache = _publish(cache_dir, maps, meta, problems, fingerprint)
     shutil.rmtree(cache_dir / SHARDS_DIR, ignore_errors=True)
     return cache

@@ -12,10 +12,12 @@ apart) and is printed beside the current path of the same run; the machine is sh
   against full decoding (the path before it), on a sample of the whole set, on its 4000 px images and on its
   640x480 ones; the whole set once with the default path (it feeds the later steps); two ranks decoding one
   shard each then joined (the torchrun path) against one process with two workers;
-- cache bytes per image (view + crops) and JPEG bytes, and the view as JPEG (what a compressed cache would hold);
+- cache bytes per image (view + crops) and JPEG bytes, raw rows against JPEG rows (``data.cache_codec: jpeg``, the
+  whole set decoded a second time into that cache: its decode + encode img/s beside the raw build's);
 - train img/s of a short timed slice (``--train-steps`` steps of 16) read from the memmap with a warm page cache,
   from the memmap with its pages evicted before each batch (``posix_fadvise DONTNEED``: what a cache larger than
-  RAM gives), and from an in-RAM copy of the same rows, the same batch through each in turn;
+  RAM gives), from an in-RAM copy of the same rows, and from the JPEG rows, the same batch through each in turn;
+  a crop-model training step on the raw and on the JPEG crops;
 - analysis (on a synthetic 4-epoch log: training the whole set is not the point here), CSV tables alone against
   CSV + Parquet copies, and the HTML report with thumbnails;
 - a linear projection of each to 118k images.
@@ -129,7 +131,7 @@ def phase_decode(args: dict) -> dict:
     from detdiff.data.image_cache import build_image_cache
 
     ds = _dataset(args)
-    options = dict(max_pixels=10**8, with_crops=True, reduced_decode=args["reduced"])
+    options = dict(max_pixels=10**8, with_crops=True, reduced_decode=args["reduced"], codec=args.get("codec", "raw"))
     if args.get("merge"):
         start = time.perf_counter()
         merge_cache_shards(ds, args["cache"], args["size"], args["world"], **options)
@@ -141,15 +143,15 @@ def phase_decode(args: dict) -> dict:
         build_cache_shard(ds, args["cache"], args["size"], args["rank"], args["world"], workers=args["workers"],
                           progress=False, **options)
     else:
-        cache = build_image_cache(ds, args["cache"], args["size"], workers=args["workers"], progress=False, **options)
-        cache.images.flush()
+        build_image_cache(ds, args["cache"], args["size"], workers=args["workers"], progress=False, **options)
     seconds = time.perf_counter() - start
     return {"seconds": seconds, "images": ds.num_images, "boxes": ds.num_annotations, **_peak()}
 
 
 def phase_train(args: dict) -> dict:
-    """Train img/s and data share from the memmap (warm; its pages evicted before each batch) and from an in-RAM
-    copy of the same rows: the same batch through each in turn, round after round, after two untimed rounds."""
+    """Train img/s and data share from the memmap (warm; its pages evicted before each batch), from an in-RAM copy
+    of the same rows and from the JPEG rows: the same batch through each in turn, round after round, after two
+    untimed rounds; then a crop-model step on raw and on JPEG crops."""
     import dataclasses
 
     import torch
@@ -158,6 +160,7 @@ def phase_train(args: dict) -> dict:
     from detdiff.data.image_cache import ImageCache
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
+    from detdiff.plan_warmup import Warmup, _time_crop_model
     from detdiff.recipe import fit_recipe
     from detdiff.train.batches import BatchMaker
     from detdiff.train.optimizer import build_optimizer
@@ -166,6 +169,7 @@ def phase_train(args: dict) -> dict:
     torch.manual_seed(0)
     ds = _dataset(args)
     cache = ImageCache.open(args["cache"])
+    jpeg = ImageCache.open(args["jpeg_cache"])
     config, _ = fit_recipe(ds, load_config(None, {"data": {"image_size": args["size"]}}), measure=False)
     batch = args["batch"]
     index = np.random.default_rng(0).permutation(cache.usable_indices)[:(args["steps"] + 2) * batch]
@@ -177,7 +181,8 @@ def phase_train(args: dict) -> dict:
     makers = {"warm": (BatchMaker(ds, cache, cpu, flips="horizontal"), index),
               "evicted": (BatchMaker(ds, cache, cpu, flips="horizontal"), index),
               "in_ram": (BatchMaker(ds.subset_images(rows), in_ram, cpu, flips="horizontal"),
-                         np.searchsorted(rows, index))}
+                         np.searchsorted(rows, index)),
+              "jpeg": (BatchMaker(ds, jpeg, cpu, flips="horizontal"), index)}
     for make, _ in makers.values():
         make.set_epoch(0)
     model = Detector.from_config(config["model"], ds.num_classes, cache.image_size)
@@ -201,6 +206,10 @@ def phase_train(args: dict) -> dict:
                 spent[name][1] += time.perf_counter() - start
     os.close(fd)
     out = {name: (args["steps"] * batch / step_s, data_s / step_s) for name, (data_s, step_s) in spent.items()}
+    for name, source in (("crop_raw", cache), ("crop_jpeg", jpeg)) * 2:       # alternated, the faster of two
+        warm = Warmup(0, 0.0, 0.0, 0.0)
+        _time_crop_model(ds, source, config, warm)
+        out[name] = min(out.get(name, np.inf), warm.crop_step_s)
     return {**out, **_peak()}
 
 
@@ -339,6 +348,12 @@ def main(argv: list[str] | None = None) -> int:
         view_b = args.image_size ** 2 * 3
         crops_b = (rundir / "cache" / "crops.u8").stat().st_size / ds.num_images
         jpeg_view_b, jpeg_view_rate = _view_as_jpeg(rundir / "cache")
+        coded = run_phase("decode", **base, rows=None, reduced=True, workers=args.workers, codec="jpeg",
+                          cache=str(work / "c_jpeg"))
+        coded_rate = coded["images"] / coded["seconds"]
+        coded_b = {name: (work / "c_jpeg" / f"{name}.jpgrows").stat().st_size / ds.num_images
+                   for name in ("images", "crops")}
+        coded_all = sum(p.stat().st_size for p in (work / "c_jpeg").iterdir() if p.is_file()) / ds.num_images
         print(f"whole set, reduced path: {whole_rate:.1f} img/s ({whole['seconds']:.0f} s); reduction 1/2/4/8: "
               + "/".join(f"{np.mean(reduction == r):.1%}" for r in (1, 2, 4, 8))
               + f" of the images; peak RSS {whole['rss'] / 2**20:.0f} MiB main, {whole['children_rss'] / 2**20:.0f} "
@@ -348,15 +363,24 @@ def main(argv: list[str] | None = None) -> int:
               f"files, {(view_b + crops_b) / 30e3:.1f}x the 30 KB goal; the view as JPEG 90 would be "
               f"{jpeg_view_b / 1e3:.1f} KB ({view_b / jpeg_view_b:.0f}x smaller), decoded at {jpeg_view_rate:.0f} "
               f"img/s by one process", flush=True)
+        print(f"JPEG rows (data.cache_codec jpeg), whole set: decode + encode {coded_rate:.1f} img/s = "
+              f"{coded_rate / whole_rate:.2f}x the raw build; {coded_all / 1e3:.1f} KB per image on disk (view "
+              f"{coded_b['images'] / 1e3:.1f} KB + crops {coded_b['crops'] / 1e3:.1f} KB + meta) = "
+              f"{(view_b + crops_b) / coded_all:.1f}x smaller than raw, {coded_all / 30e3:.2f}x the 30 KB goal",
+              flush=True)
 
         train = run_phase("train", **base, rows=None, cache=str(rundir / "cache"), steps=args.train_steps, batch=16,
-                          threads=args.workers)
-        warm, evicted, in_ram = train["warm"][0], train["evicted"][0], train["in_ram"][0]
+                          threads=args.workers, jpeg_cache=str(work / "c_jpeg"))
+        warm, evicted, in_ram, coded_train = (train[k][0] for k in ("warm", "evicted", "in_ram", "jpeg"))
         print(f"train ({args.train_steps} steps of 16 at {args.image_size} px, {args.workers} threads): memmap warm "
               f"{warm:.1f} img/s (data {train['warm'][1]:.0%} of a step), memmap evicted {evicted:.1f} img/s = "
               f"{evicted / warm:.2f}x (data {train['evicted'][1]:.0%}), in RAM {in_ram:.1f} img/s = {in_ram / warm:.2f}x;"
               f" decode (reduced, {args.workers} processes) / train = {whole_rate / warm:.1f}; peak RSS "
               f"{train['rss'] / 2**20:.0f} MiB", flush=True)
+        print(f"train from JPEG rows: {coded_train:.1f} img/s = {coded_train / warm:.2f}x the warm memmap (data "
+              f"{train['jpeg'][1]:.0%} of a step); a crop-model step (crossfit.batch_size crops): raw {train['crop_raw'] * 1e3:.0f} "
+              f"ms, JPEG {train['crop_jpeg'] * 1e3:.0f} ms = {train['crop_raw'] / train['crop_jpeg']:.2f}x the speed",
+              flush=True)
 
         ana = run_phase("analysis", **base, rows=None, rundir=str(rundir))
         print(f"analysis on a 4-epoch log: analyze_run {ana['analyze_s']:.1f} s; tables CSV {ana['write_csv_s']:.1f} s, "
@@ -370,7 +394,8 @@ def main(argv: list[str] | None = None) -> int:
               f"decode + cache {COCO_IMAGES / whole_rate / 60:.0f} min reduced against "
               f"{COCO_IMAGES / rates['sample'][0] / 60:.0f} min full (sample rates); cache "
               f"{(view_b * COCO_IMAGES + crops_118k) / 1e9:.0f} GB ({view_b * COCO_IMAGES / 1e9:.0f} views + "
-              f"{crops_118k / 1e9:.0f} crops); one epoch {COCO_IMAGES / warm / 60:.0f} min warm, "
+              f"{crops_118k / 1e9:.0f} crops), as JPEG rows {coded_all * COCO_IMAGES / 1e9:.1f} GB; one epoch "
+              f"{COCO_IMAGES / warm / 60:.0f} min warm, {COCO_IMAGES / coded_train / 60:.0f} min from JPEG rows, "
               f"{COCO_IMAGES / evicted / 60:.0f} min evicted; analysis + tables + report about "
               f"{(ana['analyze_s'] + ana['write_both_s']) * k / 60 + ana['report_s'] / 60:.0f} min "
               f"(bench_analysis_scale.py measures 118k directly)", flush=True)

@@ -257,7 +257,8 @@ def _self_check_table(run: RunFolder) -> Markup | None:
         interval = f"{ci[0]:.3f}-{ci[1]:.3f}" if all(isinstance(v, (int, float)) for v in ci) else ""
         auroc = check.get("auroc")
         auroc_text = f"{auroc:.3f}" if isinstance(auroc, (int, float)) and auroc == auroc else None
-        rows.append([KIND_TITLES[kind], num_cell(check.get("probes")), num_cell(auroc, auroc_text), interval,
+        title = KIND_TITLES[kind] + (" (AUROC per image)" if kind == "missing_box" else "")
+        rows.append([title, num_cell(check.get("probes")), num_cell(auroc, auroc_text), interval,
                      num_cell(check.get("fault_share"), format_percent(check["fault_share"])
                               if isinstance(check.get("fault_share"), (int, float)) else ""),
                      num_cell(check.get("listed")), num_cell(check.get("expected_precision")),

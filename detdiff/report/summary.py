@@ -61,8 +61,8 @@ def self_check_lines(run: RunFolder) -> list[str]:
         found = f"AUROC {auroc:.3f}" if isinstance(auroc, (int, float)) else "AUROC not measurable"
         if isinstance(ci, list) and all(isinstance(v, (int, float)) for v in ci):
             found += f" (95% CI {ci[0]:.3f}-{ci[1]:.3f})"
-        if kind == "missing_box" and isinstance(check.get("image_auroc"), (int, float)):
-            found += f", per image {check['image_auroc']:.3f}"
+        if kind == "missing_box" and isinstance(auroc, (int, float)):
+            found += " per image"
         if check.get("calibrated"):
             precision = check.get("expected_precision")
             listed = f"list of {check.get('listed', 0)}" + (f", expected precision {precision:.2f}"

@@ -20,7 +20,10 @@ apart) and is printed beside the current path of the same run; the machine is sh
   a crop-model training step on the raw and on the JPEG crops;
 - analysis (on a synthetic 4-epoch log: training the whole set is not the point here), CSV tables alone against
   CSV + Parquet copies, and the HTML report with thumbnails;
-- a linear projection of each to 118k images.
+- a linear projection of each to 118k images;
+- with ``--audit-epochs N``: a whole ``detdiff audit`` of the set with ``N`` detector epochs and one crop-model
+  epoch (the time goal is on the plan, not on training length), its plan's projected seconds per stage beside the
+  measured ones (``run.json["plan_seconds"]``) against the goal measured / projected within 0.75-1.25.
 
 Run: ``python tests/benchmarks/bench_scale.py [--data DIR] [--num-images N] [--image-size S] [--work DIR]``
 (about 15 minutes on 2 cores for 10,000 images once the set exists; ``--num-images 2000`` for a quick look).
@@ -285,6 +288,28 @@ def _view_as_jpeg(cache_dir: Path, count: int = 300) -> tuple[float, float]:
     return float(np.mean([len(b) for b in blobs])), len(blobs) / (time.perf_counter() - start)
 
 
+def audit_plan_check(ann: Path, images: Path, work: Path, epochs: int, image_size: int) -> None:
+    """A whole audit of the set (default config but ``epochs`` detector epochs, one crop-model epoch): the plan's
+    projected seconds per stage beside the measured ones."""
+    from bench_validity import print_plan
+
+    config = work / "audit.yaml"
+    config.write_text("crossfit:\n  epochs: 1\n")
+    rundir = work / "audit"
+    start = time.perf_counter()
+    done = subprocess.run([sys.executable, "-m", "detdiff", "audit", str(ann), "--images", str(images), "--out",
+                           str(rundir), "--config", str(config), "--epochs", str(epochs), "--image-size",
+                           str(image_size), "--quiet"], capture_output=True, text=True)
+    if done.returncode != 0:
+        raise RuntimeError(f"audit failed:\n{done.stdout[-3000:]}\n{done.stderr[-3000:]}")
+    run_info = json.loads((rundir / "run.json").read_text())
+    recipe = json.loads((rundir / "recipe.json").read_text())["settings"]
+    print(f"whole audit of the set ({epochs} detector epochs, 1 crop-model epoch, view {image_size} px, tiles "
+          f"{recipe.get('data.tile_scale')}, cache {recipe.get('data.cache_codec')}): "
+          f"{(time.perf_counter() - start) / 60:.1f} min; {run_info['images_per_second']:.1f} train img/s", flush=True)
+    print_plan(run_info.get("plan_seconds") or {})
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--data", type=Path, default=Path("bench_out/scale_data"), help="generated set (kept)")
@@ -296,6 +321,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--train-steps", type=int, default=12)
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--keep", action="store_true", help="keep --work")
+    parser.add_argument("--audit-epochs", type=int, default=0,
+                        help="also run a whole audit of the set with this many detector epochs (0: none)")
     parser.add_argument("--phase", nargs=2, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.phase:
@@ -399,6 +426,8 @@ def main(argv: list[str] | None = None) -> int:
               f"{COCO_IMAGES / evicted / 60:.0f} min evicted; analysis + tables + report about "
               f"{(ana['analyze_s'] + ana['write_both_s']) * k / 60 + ana['report_s'] / 60:.0f} min "
               f"(bench_analysis_scale.py measures 118k directly)", flush=True)
+        if args.audit_epochs:
+            audit_plan_check(ann, images, work, args.audit_epochs, args.image_size)
         print(f"goals: decode + cache of 640x480 JPEGs {rates['vga'][1]:.0f} img/s = {rates['vga'][1] / 300:.2f}x the "
               f"300 img/s goal (full decode {rates['vga'][0] / 300:.2f}x); total {time.perf_counter() - t_all:.0f} s")
     finally:

@@ -172,11 +172,8 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
                   for kind in self_check.FAULT_KINDS}
         checks["missing_box"]["probe_hits"] = checks["missing_box"]["probes"]
         checks["missing_box"]["probes"] = int(len(missing_rows))
-        if image_cal is not None:         # headline: images holding a probe found among the others, the unit of the
-            per_image = self_check.summary("missing_box", image_cal, items=0, listed_p=np.zeros(0), level=level)
-            checks["missing_box"]["proposal_auroc"] = checks["missing_box"].get("auroc")    # (mostly-fault proposals
-            checks["missing_box"]["image_auroc"] = per_image["auroc"]                     # make that one ~0.5)
-            checks["missing_box"].update({k: per_image[k] for k in ("auroc", "auroc_raw", "auroc_ci95")})
+        if image_cal is not None:
+            checks["missing_box"] |= self_check.image_auroc_fields(image_cal, checks["missing_box"].get("auroc"))
         checks["crossfit_seconds"] = round(float(prediction.seconds), 1)
     return AnalysisTables(
         images=_ordered(images, IMAGE_COLUMNS), objects=_ordered(objects, OBJECT_COLUMNS),

@@ -189,13 +189,12 @@ def cache_disk_bytes(dataset: CocoDataset, config: dict[str, Any], encoded: tupl
     views = dataset.num_images + tile_count(dataset, config)
     crops = dataset.num_annotations if crops_on else 0
     if cache_codec(config) == "raw":
-        per_view, per_crop = 3.0 * size * size, 3.0 * STORE * STORE
-    else:
+        per_view, per_crop, row_meta = 3.0 * size * size, 3.0 * STORE * STORE, 0
+    else:                                                  # each row's offset and length go into meta.npz
         per_view, per_crop = encoded or (ENCODED_BYTES_PER_PX * size * size, ENCODED_BYTES_PER_PX * STORE * STORE)
-        views_meta = 16 * (views + crops)                  # each row's offset and length in meta.npz
-        return int(per_view * views + per_crop * crops + views_meta + META_BYTES_PER_IMAGE * dataset.num_images
-                   + CACHE_FIXED_BYTES)
-    return int(per_view * views + per_crop * crops + META_BYTES_PER_IMAGE * dataset.num_images + CACHE_FIXED_BYTES)
+        row_meta = 16
+    return int(per_view * views + per_crop * crops + row_meta * (views + crops)
+               + META_BYTES_PER_IMAGE * dataset.num_images + CACHE_FIXED_BYTES)
 
 
 def _cache_part(dataset: CocoDataset, config: dict[str, Any], warm: Warmup, size: int,

@@ -308,22 +308,14 @@ def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe |
     return out
 
 
-def raw_cache_bytes(dataset: CocoDataset, config: dict[str, Any]) -> int:
-    """Bytes of the image cache's rows stored raw: ``3 S^2`` per whole view and tile, a 64x64x3 crop per box when
-    the crop models are on."""
-    from detdiff.crossfit.crops import crop_bytes
-
-    size, tile_scale = int(config["data"]["image_size"]), config["data"].get("tile_scale")
-    cap = float(tile_scale) if isinstance(tile_scale, (int, float)) else 0.0
-    views = dataset.num_images + tile_count(dataset, size, cap, float(config["recipe"]["min_object_px"]))
-    crops = crop_bytes(dataset.num_annotations) if config["crossfit"]["enabled"] else 0
-    return 3 * size * size * views + crops
-
-
 def choose_cache_codec(dataset: CocoDataset, config: dict[str, Any]) -> tuple[str, str]:
-    """``data.cache_codec`` for ``auto``: raw rows (read without decoding) while they take at most
-    ``recipe.raw_cache_gb``, JPEG rows (a tenth to a twentieth of the bytes) beyond; with its reason."""
-    raw, limit = raw_cache_bytes(dataset, config), float(config["recipe"]["raw_cache_gb"]) * 1e9
+    """``data.cache_codec`` for ``auto``: raw rows (read without decoding) while the cache they make
+    (:func:`detdiff.plan.cache_disk_bytes`) takes at most ``recipe.raw_cache_gb``, JPEG rows (a tenth to a
+    twentieth of the bytes) beyond; with its reason."""
+    from detdiff.plan import cache_disk_bytes
+
+    as_raw = {**config, "data": {**config["data"], "cache_codec": "raw"}}
+    raw, limit = cache_disk_bytes(dataset, as_raw), float(config["recipe"]["raw_cache_gb"]) * 1e9
     codec = "raw" if raw <= limit else "jpeg"
     return codec, (f"{codec}: the raw rows would take {raw / 1e9:.1f} GB, {'within' if codec == 'raw' else 'over'} "
                    f"recipe.raw_cache_gb {limit / 1e9:g} GB" + ("" if codec == "raw" else

@@ -104,22 +104,17 @@ def hanley_mcneil_se(auc: float, n_pos: int, n_neg: int) -> float:
     return float(math.sqrt(max(var, 0.0)))
 
 
-def tail_ratios(unlabelled: np.ndarray, probes: np.ndarray, quantiles=TAIL_QUANTILES) -> np.ndarray:
-    """The upper-tail ratios ``(1 - F(t)) / (1 - F1(t))`` at the probes' ``quantiles``."""
+def fault_share(unlabelled: np.ndarray, probes: np.ndarray) -> float:
+    """Share of faults among ``unlabelled`` scores: the median of the upper-tail ratios
+    ``(1 - F(t)) / (1 - F1(t))`` at the probes' quartiles (see module docstring)."""
     n0, n1 = len(unlabelled), len(probes)
+    if not n0 or n1 < MIN_PROBES:
+        return float("nan")
     probes_sorted, u_sorted = np.sort(probes), np.sort(unlabelled)
-    thresholds = np.quantile(probes_sorted, quantiles, method="lower")
+    thresholds = np.quantile(probes_sorted, TAIL_QUANTILES, method="lower")
     tail_u = (n0 - np.searchsorted(u_sorted, thresholds, side="left")) / n0
     tail_p = (n1 - np.searchsorted(probes_sorted, thresholds, side="left")) / n1
-    return tail_u / tail_p
-
-
-def fault_share(unlabelled: np.ndarray, probes: np.ndarray) -> float:
-    """Share of faults among ``unlabelled`` scores: the median of the upper-tail ratios at the probes' quartiles
-    (see module docstring)."""
-    if not len(unlabelled) or len(probes) < MIN_PROBES:
-        return float("nan")
-    return float(np.clip(np.median(tail_ratios(unlabelled, probes)), 0.0, 1.0))
+    return float(np.clip(np.median(tail_u / tail_p), 0.0, 1.0))
 
 
 def probe_odds(unlabelled: np.ndarray, probes: np.ndarray) -> np.ndarray:

@@ -132,8 +132,8 @@ def merge_cache_shards(dataset: CocoDataset, cache_dir: str | Path, image_size: 
     metas = []
     for folder in folders:
         with np.load(folder / META_FILE) as meta:
-            metas.append({key: meta[key] for key in meta.files
-                          if key in ("scale", "usable", "pixel", "reduction") or key.endswith(("_offsets", "_lengths"))})
+            metas.append({key: meta[key] for key in meta.files if key in ("scale", "usable", "pixel", "reduction")
+                          or key.endswith(("_offsets", "_lengths"))})
     problems = [{**p, "index": int(p["index"]) + int(bounds[k])} for k, s in enumerate(shards) for p in s.problems]
     del shards                                            # their memmaps are about to be deleted
     names = stored_names(codec)

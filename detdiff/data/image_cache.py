@@ -583,10 +583,9 @@ class _DecodeProgress:
         """Write the progress atomically; the next save waits 50 times as long as this one took, 2 s at least."""
         started = time.monotonic()
         tmp = self.path.with_name(f"decode-progress.tmp-{os.getpid()}.npz")
-        rows = {}
-        for kind, appender in self.appenders.items():
-            rows |= {f"{kind}_offsets": appender.offsets, f"{kind}_lengths": appender.lengths,
-                     f"{kind}_end": np.int64(appender.end)}
+        rows = {f"{kind}_end": np.int64(appender.end) for kind, appender in self.appenders.items()}
+        if self.appenders:
+            rows |= encoded_meta("jpeg", {kind: (a.offsets, a.lengths) for kind, a in self.appenders.items()})
         with open(tmp, "wb") as fh:
             np.savez(fh, key=np.array(self.key), done=self.done, scale=self.scale, usable=self.usable,
                      pixel=self.pixel, reduction=self.reduction, problems=np.array(json.dumps(self.problems)), **rows)

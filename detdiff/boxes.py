@@ -65,6 +65,29 @@ def group_pairs(offsets: np.ndarray, *, chunk: int = PAIR_CHUNK) -> Iterator[tup
         first = last
 
 
+def cross_group_pairs(group_a: np.ndarray, group_b: np.ndarray, *,
+                      chunk: int = PAIR_CHUNK) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Yield ``(rows_a, rows_b)`` int64 arrays of every pair of a row of ``a`` and a row of ``b`` with the same
+    group key (``group_a [N]``, ``group_b [M]``: non-negative ints, e.g. image rows), in chunks of about
+    ``chunk`` pairs; a row of ``a`` never spans two chunks. The pairs of :func:`group_pairs` across two sets."""
+    group_a, group_b = np.asarray(group_a, np.int64), np.asarray(group_b, np.int64)
+    if not len(group_a) or not len(group_b):
+        return
+    counts_b = np.bincount(group_b, minlength=int(max(group_a.max(), group_b.max())) + 1)
+    start_b = np.cumsum(counts_b) - counts_b
+    order_b = np.argsort(group_b, kind="stable")
+    partners = counts_b[group_a]
+    cum = np.cumsum(partners)
+    first = 0
+    while first < len(group_a):
+        base = cum[first - 1] if first else 0
+        last = max(int(np.searchsorted(cum, base + chunk, side="right")), first + 1)
+        counts = partners[first:last]
+        yield (np.repeat(np.arange(first, last, dtype=np.int64), counts),
+               order_b[concatenated_ranges(start_b[group_a[first:last]], counts)])
+        first = last
+
+
 def concatenated_ranges(starts: np.ndarray, counts: np.ndarray) -> np.ndarray:
     """``[starts[0], ..., starts[0] + counts[0] - 1, starts[1], ...]`` (int64): the rows of several contiguous groups,
     group by group, without a Python loop."""

@@ -129,6 +129,14 @@ def make_run_folder(root: str | Path, *, num_images: int = 10, epochs: int = 3, 
         "why": np.where(boxes_per_image >= 3, "crowded;cluttered", "dark"),
     })
     images.loc[~usable, "why"] = ""
+    # the strongest unannotated place per image (images 2 and 3 only), as the analysis writes it
+    images["missing_box_score"] = np.where(usable, 0.0, np.nan)
+    images.loc[[2, 3], "missing_box_score"] = [0.4, 0.7]
+    for column, values in zip(("x", "y", "w", "h"), ([5.0, 40.0], [6.0, 30.0], [14.0, 20.0], [12.0, 16.0])):
+        images[f"missing_box_{column}"] = np.nan
+        images.loc[[2, 3], f"missing_box_{column}"] = values
+    images["missing_box_category_id"] = pd.array([pd.NA] * num_images, dtype="Int64")
+    images.loc[3, "missing_box_category_id"] = CATEGORIES[1][0]
     images.to_csv(rundir / "images.csv", index=False)
 
     map_xy = rng.normal(0, 1, (num_objects, 2))

@@ -9,7 +9,7 @@ import pytest
 import torch
 from torchvision.ops import box_iou
 
-from detdiff.boxes import group_offsets, group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
+from detdiff.boxes import cross_group_pairs, group_offsets, group_pairs, pair_iou, xywh_to_xyxy, xyxy_to_xywh
 
 
 def test_pair_iou_matches_torchvision() -> None:
@@ -38,3 +38,15 @@ def test_box_format_round_trip() -> None:
     assert xywh_to_xyxy(xywh).tolist() == [[1, 2, 4, 6], [0, 0, 10, 5]]
     np.testing.assert_array_equal(xyxy_to_xywh(xywh_to_xyxy(xywh)), xywh)
     assert group_offsets(np.array([], dtype=int)).tolist() == [0]
+
+
+def test_cross_group_pairs_are_every_same_group_pair_once() -> None:
+    # reference: the brute-force set of (a, b) with equal keys; a small chunk forces several chunks
+    rng = np.random.default_rng(3)
+    group_a, group_b = rng.integers(0, 6, 40), rng.integers(0, 8, 25)
+    expected = {(i, j) for i in range(40) for j in range(25) if group_a[i] == group_b[j]}
+    chunks = list(cross_group_pairs(group_a, group_b, chunk=7))
+    found = [(int(i), int(j)) for left, right in chunks for i, j in zip(left, right)]
+    assert len(found) == len(set(found)) and set(found) == expected
+    assert len(chunks) > 1
+    assert list(cross_group_pairs(group_a, np.zeros(0, np.int64))) == []

@@ -21,7 +21,7 @@ import pandas as pd
 import pytest
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from report_fixture import HOSTILE_CATEGORY, HOSTILE_FILE_NAME, make_run_folder  # noqa: E402
+from report_fixture import CATEGORIES, HOSTILE_CATEGORY, HOSTILE_FILE_NAME, make_run_folder  # noqa: E402
 
 from detdiff.report.advice import cause_subject, significant_causes, sourcing_advice, spearman_phrase  # noqa: E402
 from detdiff.report.elements import el  # noqa: E402
@@ -131,8 +131,8 @@ def test_lists_are_bounded_by_top(tmp_path):
     page = write_report(rundir, top=2, thumbnail_size=64)
     _, parsed = _parse(page)
     figures = sum(1 for t, a in parsed.tags if t == "figure")
-    # 3 streams x (2 hardest + 1 easiest) images, 2 x 2 hardest objects, at most 2 per suspect kind
-    assert figures <= 3 * 3 + 2 * 2 + 4 * 2
+    # 3 streams x (2 hardest + 1 easiest) images, 2 x 2 hardest objects, at most 2 per suspect kind, 2 images to re-check
+    assert figures <= 3 * 3 + 2 * 2 + 4 * 2 + 2
     thumbs = list((rundir / "report" / "thumbs").glob("*.jpg"))
     assert 0 < len(thumbs) <= figures
 
@@ -324,3 +324,16 @@ def test_lift_ticks_are_plain_and_apart(low: float, high: float, width: float) -
         assert np.log10(b / a) * px >= (_label_width(f"{a:g}", font) + _label_width(f"{b:g}", font)) / 2
     if width >= 140:
         assert len(ticks) >= 3
+
+
+def test_images_to_recheck_for_a_missing_box(report):
+    rundir, page = report
+    text, parsed = _parse(page)
+    assert "missing-places" in {a.get("id") for _, a in parsed.tags}
+    decoded = " ".join(" ".join(parsed.text).split())
+    section = decoded[decoded.index("Images to re-check for an unannotated object"):]
+    # ranked by missing_box_score (image 103 at 0.7 before image 102 at 0.4); images without a place are left out
+    assert section.index("image 103") < section.index("image 102")
+    assert f"Look for an unannotated '{CATEGORIES[1][1]}' at [40, 30, 20, 16]" in section
+    assert "Look for an unannotated object at [5, 6, 14, 12]" in section
+    assert section.count("Look for an unannotated") == 2

@@ -13,7 +13,8 @@ import torch
 from pycocotools.coco import COCO
 from torchvision.ops import box_convert, box_iou
 
-from detdiff.analysis.suspects import late_epochs, required_epochs
+from detdiff.analysis.suspects import (add_final_sightings, final_unmatched, late_epochs, read_detections,
+                                       required_epochs)
 from detdiff.analysis.tables import (CLASS_COLUMNS, IMAGE_COLUMNS, OBJECT_COLUMNS, analyze_run, review_coco,
                                      write_tables)
 from detdiff.config import load_config
@@ -232,3 +233,34 @@ def test_features_of_another_dataset_are_refused(tmp_path) -> None:
     np.save(tmp_path / "object_features.npy", np.zeros((5, 3), np.float32))
     with pytest.raises(ValueError, match=r"object_features\.npy: object features have shape \(5, 3\)"):
         analyze_run(tmp_path, ds, load_config())
+
+
+def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
+    ds, plant, tables, _ = run
+    image2 = [a["bbox"] for a in _coco()["annotations"] if a["image_id"] == 102]
+    records = [{"image_id": 102, "category_id": DOG, "bbox": image2[0], "score": 0.9},          # an annotated box
+               {"image_id": 102, "category_id": CUP, "bbox": [150, 120, 30, 30], "score": 0.6},  # nothing there
+               {"image_id": 102, "category_id": CAT, "bbox": [152, 121, 30, 30], "score": 0.4},  # same place, lower
+               {"image_id": 105, "category_id": CUP, "bbox": MISSING_BOX, "score": 0.5}]         # the log's proposal
+    records += [{"image_id": 103, "category_id": CAT, "bbox": [150, 100 + 12 * k, 10, 10], "score": 0.3 - 0.01 * k}
+                for k in range(5)]
+    path = tmp_path / "detections.json"
+    path.write_text(json.dumps(records))
+    detections = read_detections(path, ds)
+    final = final_unmatched(ds, detections, np.arange(ds.num_annotations), max_iou=0.3, per_image=3)
+    # reference: torchvision's box_iou against every annotation of the image
+    for img, box in zip(final["image"], final["box"]):
+        anns = box_convert(torch.from_numpy(ds.boxes[ds.ann_image_index == img]), "xywh", "xyxy")
+        assert box_iou(torch.from_numpy(box[None]), anns).max() < 0.3
+    kept = sorted(zip(ds.image_ids[final["image"]].tolist(), np.round(final["score"], 2).tolist()))
+    assert kept == [(102, 0.6), (103, 0.28), (103, 0.29), (103, 0.3), (105, 0.5)]   # one per place, 3 per image
+    proposals = _kind(tables, "missing_box")
+    seen_twice, final_only = add_final_sightings(ds, proposals, final)
+    assert len(seen_twice) == len(proposals)
+    np.testing.assert_allclose(seen_twice["score"], (proposals["score"].to_numpy() + 0.5) / 2)
+    assert "after training the detector scores it 0.50" in seen_twice["evidence"].iat[0]
+    assert sorted(final_only["image_id"].tolist()) == [102, 103, 103, 103]
+    np.testing.assert_allclose(sorted(final_only["score"]), sorted([0.3, 0.15, 0.145, 0.14]))
+    path.write_text(json.dumps([{"image_id": 999, "category_id": CAT, "bbox": [0, 0, 5, 5], "score": 0.5}]))
+    with pytest.raises(ValueError, match=r"detections\.json: record 0 names image_id 999"):
+        read_detections(path, ds)

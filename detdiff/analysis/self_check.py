@@ -18,7 +18,9 @@ Scores:
 * loose box: ``1 - IoU`` of the annotated box with the box the crop model draws around it; a box probe is a
   loosened copy of a box (IoU 0.45-0.75 with it), scored with the box drawn around the loosened copy.
 * missing box: the detector's proposals (persistent unmatched detections, :mod:`detdiff.analysis.suspects`),
-  scored by presence share x mean detection score; a proposal is a probe hit when it covers a planted
+  scored by the mean of presence share x mean detection score and the trained detector's score for the place
+  (:func:`detdiff.analysis.suspects.add_final_sightings`; final detections at no proposal count in the image
+  evidence only, scored as seen once); a proposal is a probe hit when it covers a planted
   missing-box probe (IoU >= 0.5), and probe hits never reach an output. Proposals are candidates already, and
   where most of them are real missing boxes they score like the probes: their AUROC against the probes is
   then near 0.5 whether the evidence works or not. So whether it works is judged on images (each scored by
@@ -188,24 +190,31 @@ def _spread(values: np.ndarray, rows: np.ndarray, size: int) -> np.ndarray:
 
 
 def missing_box_evidence(dataset: CocoDataset, proposals: pd.DataFrame, missing_rows: np.ndarray,
-                         usable: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame, Calibration | None, Calibration | None]:
+                         usable: np.ndarray, image_only: pd.DataFrame | None = None
+                         ) -> tuple[pd.DataFrame, pd.DataFrame, Calibration | None, Calibration | None]:
     """Calibrate the detector's missing-box proposals with the planted probes.
 
     ``proposals``: missing_box suspects (``image_index``, ``suggested_x/y/w/h``, ``score``). Returns the proposals
     that are not probe hits with their ``p_fault``, the per-image columns ``missing_box_score`` /
     ``missing_box_p`` (probe hits left out), and two calibrations: proposals (probe hits vs the rest) and
     images (images holding a probe vs the others, each scored by its best proposal, probe hits included).
+    ``image_only``: more proposals (same columns) that count in the per-image columns and the image calibration
+    but are never listed nor returned (the final pass's detections at no late-epoch proposal).
     """
-    image = proposals["image_index"].to_numpy(dtype=np.int64)
-    box = proposals[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(dtype=np.float64)
-    score = proposals["score"].to_numpy(dtype=np.float64)
-    hit = probe_hits(image, box, dataset.ann_image_index[missing_rows], dataset.boxes[missing_rows])
+    columns = ["image_index", "suggested_x", "suggested_y", "suggested_w", "suggested_h", "score",
+               "suggested_category_id"]
+    pooled = pd.concat([proposals[columns]] + ([image_only[columns]] if image_only is not None else []))
+    image = pooled["image_index"].to_numpy(dtype=np.int64)
+    box = pooled[columns[1:5]].to_numpy(dtype=np.float64)
+    score = pooled["score"].to_numpy(dtype=np.float64)
+    hit_pooled = probe_hits(image, box, dataset.ann_image_index[missing_rows], dataset.boxes[missing_rows])
+    hit = hit_pooled[:len(proposals)]
     per_proposal: Calibration | None = None
     image_best: Calibration | None = None
     kept = proposals[~hit].copy()
     kept["p_fault"] = np.nan
     img_score = np.zeros(dataset.num_images)
-    np.maximum.at(img_score, image[~hit], score[~hit])
+    np.maximum.at(img_score, image[~hit_pooled], score[~hit_pooled])
     img_p = np.full(dataset.num_images, np.nan)
     if len(missing_rows):
         all_best = np.zeros(dataset.num_images)
@@ -214,12 +223,28 @@ def missing_box_evidence(dataset: CocoDataset, proposals: pd.DataFrame, missing_
         probe_images = np.zeros(dataset.num_images, bool)
         probe_images[dataset.ann_image_index[missing_rows]] = True
         image_best = check_kind(all_best[usable & ~probe_images], all_best[usable & probe_images])
-        per_proposal = calibrate(score[~hit], score[hit],
+        listed = score[:len(proposals)]
+        per_proposal = calibrate(listed[~hit], listed[hit],
                                  separates=image_best.calibrated and image_best.auroc_raw > 0.5)
         kept["p_fault"] = per_proposal.posterior
         if per_proposal.calibrated and (~hit).any():
             img_p[:] = 0.0
-            np.maximum.at(img_p, image[~hit], per_proposal.posterior)
+            np.maximum.at(img_p, image[:len(proposals)][~hit], per_proposal.posterior)
     images = pd.DataFrame({"missing_box_score": np.where(usable, img_score, np.nan),
                            "missing_box_p": np.where(usable, img_p, np.nan)})
-    return kept, images, per_proposal, image_best
+    return kept, pd.concat([images, best_places(pooled[~hit_pooled], dataset.num_images)], axis=1), per_proposal, \
+        image_best
+
+
+def best_places(proposals: pd.DataFrame, num_images: int) -> pd.DataFrame:
+    """Per image row, the highest-scored proposal: ``missing_box_x/y/w/h`` (xywh original px) and
+    ``missing_box_category_id`` (the class it was detected as), NaN / NA where the image has none."""
+    order = np.argsort(-proposals["score"].to_numpy(dtype=np.float64), kind="stable")
+    first = proposals.iloc[order].drop_duplicates("image_index")
+    rows = first["image_index"].to_numpy(dtype=np.int64)
+    box = np.full((num_images, 4), np.nan)
+    box[rows] = first[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(dtype=np.float64)
+    category = pd.array([pd.NA] * num_images, dtype="Int64")
+    category[rows] = first["suggested_category_id"].to_numpy()
+    return pd.DataFrame({"missing_box_x": box[:, 0], "missing_box_y": box[:, 1], "missing_box_w": box[:, 2],
+                         "missing_box_h": box[:, 3], "missing_box_category_id": category})

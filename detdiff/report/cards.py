@@ -128,6 +128,9 @@ def _suspect_fix(page: Page, record: pd.Series, suggested: np.ndarray) -> str:
     if kind == "missing_box":
         what = f"a '{suggested_name}' box" if suggested_name else "a box"
         return f"Add {what} at {xywh_text(suggested)}" if np.isfinite(suggested).all() else f"Add {what}"
+    if kind == "missing_place":
+        what = f"an unannotated '{suggested_name}'" if suggested_name else "an unannotated object"
+        return f"Look for {what} at {xywh_text(suggested)}"
     if kind == "loose_box":
         return f"Set the box to {xywh_text(suggested)}" if np.isfinite(suggested).all() else "Tighten the box"
     if kind == "duplicate_box":
@@ -137,7 +140,40 @@ def _suspect_fix(page: Page, record: pd.Series, suggested: np.ndarray) -> str:
 
 def suspect_cards(page: Page, kind: str, plan: bool) -> list[Markup]:
     """The top suspects of ``kind``, each cropped around its boxes; ``plan`` only asks for thumbnails."""
-    part = _suspect_order(page, kind)
+    return _cards(page, _suspect_order(page, kind), plan, "s")
+
+
+def missing_place_order(page: Page) -> pd.DataFrame:
+    """Suspect-like rows of the images most likely to lack a box: the usable images ranked by ``missing_box_score``
+    (their strongest detection that matches no annotation), each with that detection as the suggested box."""
+    images = page.run.images
+    columns = ["missing_box_score", "missing_box_x", "missing_box_y", "missing_box_w", "missing_box_h"]
+    if not set(columns) <= set(images.columns):
+        return pd.DataFrame()
+    values = images[columns].apply(pd.to_numeric, errors="coerce")
+    ranked = values[(values["missing_box_score"] > 0) & images["usable"].astype(bool)
+                    & np.isfinite(values[columns[1:]]).all(axis=1)]
+    ranked = ranked.sort_values("missing_box_score", ascending=False, kind="stable").head(page.top)
+    category = (pd.to_numeric(images["missing_box_category_id"], errors="coerce").reindex(ranked.index)
+                if "missing_box_category_id" in images else pd.Series(np.nan, index=ranked.index))
+    return pd.DataFrame({
+        "kind": "missing_place", "image_id": images["image_id"].reindex(ranked.index), "annotation_id": np.nan,
+        "x": np.nan, "y": np.nan, "w": np.nan, "h": np.nan, "suggested_category_id": category,
+        "suggested_x": ranked["missing_box_x"], "suggested_y": ranked["missing_box_y"],
+        "suggested_w": ranked["missing_box_w"], "suggested_h": ranked["missing_box_h"],
+        "score": ranked["missing_box_score"],
+        "evidence": [f"strongest detection matching no annotation here (image evidence {v:.2f})"
+                     for v in ranked["missing_box_score"]]})
+
+
+def missing_place_cards(page: Page, plan: bool) -> list[Markup]:
+    """The images most likely to lack a box (:func:`missing_place_order`), each cropped around its best place."""
+    return _cards(page, missing_place_order(page), plan, "m")
+
+
+def _cards(page: Page, part: pd.DataFrame, plan: bool, prefix: str) -> list[Markup]:
+    """Cards of suspect-layout rows, each cropped around its annotated and suggested boxes (thumbnail names
+    ``prefix`` + row label); ``plan`` only asks for thumbnails."""
     if part.empty:
         return []
     annotated, suggested = _suspect_boxes(part)
@@ -150,7 +186,7 @@ def suspect_cards(page: Page, kind: str, plan: bool) -> list[Markup]:
     for rank, ((index, record), image_row, view) in enumerate(zip(part.iterrows(), image_rows, views), start=1):
         if image_row < 0 or not np.isfinite(view).all():
             continue
-        name = f"s{index}"
+        name = f"{prefix}{index}"
         if plan:
             page.request(name, int(image_row), tuple(float(v) for v in view), max(160, page.thumbnail_size * 3 // 4))
             continue
@@ -186,6 +222,7 @@ def plan_cards(page: Page) -> None:
             object_cards(page, stream, plan=True)
     for kind in SUSPECT_KINDS:
         suspect_cards(page, kind, plan=True)
+    missing_place_cards(page, plan=True)
     unique: dict[str, Shot] = {shot.name: shot for shot in page.shots}
     page.shots = list(unique.values())
     rows = np.unique(np.concatenate(shown)).astype(np.int64)

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 
 from detdiff.report.advice import Advice, lift_sentence, significant_causes, sourcing_advice
-from detdiff.report.cards import image_card, object_cards, stream_rows, suspect_cards
+from detdiff.report.cards import image_card, missing_place_cards, object_cards, stream_rows, suspect_cards
 from detdiff.report.elements import Markup, data_table, el, fmt, join, num_cell, plot_image
 from detdiff.report.page import Page
 from detdiff.report.run_folder import STREAMS, SUSPECT_KINDS, RunFolder, lint_code_counts, lint_totals
@@ -43,6 +43,10 @@ SELF_CHECK_NOTE = ("Before training, the audit made faults of its own: boxes lef
                    "items is the audit's accuracy on this dataset (AUROC, 95% interval); the same scores estimate "
                    "each suspect's probability of being a real fault, and each list stops where that probability "
                    "falls below the level shown. No planted fault is ever listed as a suspect.")
+MISSING_PLACES_NOTE = ("Every image ranked by its strongest detection that matches no annotation, in the late "
+                       "epochs or after training (the dashed box): where an unannotated object is most likely, "
+                       "whether or not it made the list above. A ranking, not a list of faults: the self-check's "
+                       "missing-box AUROC per image says how well it separates images that lack a box here.")
 #: (anchor, label) of each section, for the page's menu
 NAV = [("overview", "Overview"), ("actions", "What to do"), ("stream-loc", "Box regression"),
        ("stream-pos", "Positive class"), ("stream-neg", "Background class"), ("suspects", "Suspects"),
@@ -243,7 +247,19 @@ def _suspects_section(page: Page) -> Markup:
         body.append(el("h3", {"id": f"suspects-{kind}"}, KIND_TITLES[kind], el("span", {"class": "sub"}, shown)))
         body.append(el("p", {"class": "note"}, KIND_EXPLAINED[kind]))
         body.append(el("div", {"class": "grid small"}, cards) if cards else el("p", {"class": "empty"}, "None."))
+        if kind == "missing_box":
+            body += _missing_places(page)
     return el("section", {"id": "suspects"}, body)
+
+
+def _missing_places(page: Page) -> list[Markup]:
+    """The images ranked by their missing-box evidence: where to look for unannotated objects, list or not."""
+    cards = missing_place_cards(page, plan=False)
+    if not cards:
+        return []
+    return [el("h3", {"id": "missing-places"}, "Images to re-check for an unannotated object",
+               el("span", {"class": "sub"}, f"top {len(cards)}")),
+            el("p", {"class": "note"}, MISSING_PLACES_NOTE), el("div", {"class": "grid small"}, cards)]
 
 
 def _self_check_table(run: RunFolder) -> Markup | None:

@@ -178,7 +178,7 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
     """Time a crop-model training step and a prediction per row on the sample's stored crops."""
     from detdiff.crossfit import crop_model as cm
     from detdiff.crossfit.crops import crop_extent
-    from detdiff.crossfit.folds import reference_boxes, target_in_window, to_reference_units, windows_around
+    from detdiff.crossfit.folds import TEST_SCALES, reference_boxes, target_in_window, to_reference_units, windows_around
     from detdiff.train.batches import FLIP_MODES
 
     cfg = config["crossfit"]
@@ -219,10 +219,11 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
 
     @torch.no_grad()
     def predict() -> None:
-        pixels = cm.resample(cache.crops[p_idx], p_windows, size, extent=extent)
-        model(pixels, p_geometry)[0].softmax(1)
-        if allowed[0]:
-            model(pixels.flip(-1).contiguous(memory_format=torch.channels_last), p_geometry)[0].softmax(1)
+        for _ in TEST_SCALES:                   # one window per test scale, as folds._predict
+            pixels = cm.resample(cache.crops[p_idx], p_windows, size, extent=extent)
+            model(pixels, p_geometry)[0].softmax(1)
+            if allowed[0]:
+                model(pixels.flip(-1).contiguous(memory_format=torch.channels_last), p_geometry)[0].softmax(1)
 
     model.eval()
     warm.predict_s_per_row = _fastest_seconds(predict, lambda: None) / PREDICT_ROWS

@@ -9,7 +9,8 @@ Input: a window of twice the annotated box around its centre, resampled to ``inp
 stored crop (:mod:`detdiff.crossfit.crops`), plus four numbers on the box's geometry (log width and height
 relative to the image, log aspect, log side), standardised. In training the window is shifted and scaled at
 random (:func:`sample_windows`), so the model learns to find the object's true extent inside any window
-near it; at prediction time the window is centred on the annotated box.
+near it; at prediction time the window is centred on the annotated box (three window sizes and their mirrors
+averaged: :data:`detdiff.crossfit.folds.TEST_SCALES`).
 
 Outputs: ``C`` class logits and the box as ``(x1, y1, x2, y2)`` in window units (0..1). Losses: cross-entropy
 with label smoothing 0.05 (common practice against noisy labels) and smooth L1 on the box (Girshick, Fast

@@ -178,7 +178,8 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
     """Time a crop-model training step and a prediction per row on the sample's stored crops."""
     from detdiff.crossfit import crop_model as cm
     from detdiff.crossfit.crops import crop_extent
-    from detdiff.crossfit.folds import TEST_SCALES, reference_boxes, target_in_window, to_reference_units, windows_around
+    from detdiff.crossfit.folds import (TEST_SCALES, reference_boxes, target_in_window, to_reference_units,
+                                        windows_around)
     from detdiff.train.batches import FLIP_MODES
 
     cfg = config["crossfit"]

@@ -131,7 +131,8 @@ def test_lists_are_bounded_by_top(tmp_path):
     page = write_report(rundir, top=2, thumbnail_size=64)
     _, parsed = _parse(page)
     figures = sum(1 for t, a in parsed.tags if t == "figure")
-    # 3 streams x (2 hardest + 1 easiest) images, 2 x 2 hardest objects, at most 2 per suspect kind, 2 images to re-check
+    # 3 streams x (2 hardest + 1 easiest) images, 2 x 2 hardest objects, at most 2 per suspect kind,
+    # 2 images to re-check
     assert figures <= 3 * 3 + 2 * 2 + 4 * 2 + 2
     thumbs = list((rundir / "report" / "thumbs").glob("*.jpg"))
     assert 0 < len(thumbs) <= figures

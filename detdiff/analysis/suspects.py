@@ -356,7 +356,7 @@ def add_final_sightings(dataset: CocoDataset, proposals: pd.DataFrame,
     new = np.flatnonzero(~absorbed)
     new_box = xyxy_to_xywh(final["box"][new])
     new_texts = [f"a '{_name(dataset, lb)}' detection of the trained detector (score {s:.2f}) matching no annotation "
-                 f"at [{b[0]:.0f}, {b[1]:.0f}, {b[2]:.0f}, {b[3]:.0f}]; below the training log's threshold in the late epochs"
+                 f"at [{b[0]:.0f}, {b[1]:.0f}, {b[2]:.0f}, {b[3]:.0f}]; not a persistent detection of the late epochs"
                  for lb, s, b in zip(final["label"][new], final["score"][new], new_box)]
     suggested = proposals[["suggested_category_id"]].to_numpy(dtype=np.float64, na_value=np.nan)[:, 0]
     label_of = {int(c): k for k, c in enumerate(dataset.category_ids)}

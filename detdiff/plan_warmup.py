@@ -141,7 +141,7 @@ def _time_detector(sub: CocoDataset, cache: ImageCache, config: dict[str, Any], 
         batch = maker(index)
         with torch.autograd.graph.saved_tensors_hooks(keep if not saved else (lambda t: t), lambda t: t):
             streams = compute_loss_streams(model(batch.images), model.anchors, batch.targets, config["loss"],
-                                           config["log"])
+                                           config["log"], grid=model.anchor_grid)
         optimizer.zero_grad(set_to_none=True)
         streams.total.backward()
         if clip > 0:

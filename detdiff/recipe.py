@@ -204,7 +204,8 @@ def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: i
         targets = [{"boxes": xyxy[b], "labels": torch.randint(0, max(1, num_classes), (count,))} for b in range(batch)]
 
         def detector_step() -> None:
-            streams = compute_loss_streams(detector(images), detector.anchors, targets, config["loss"], config["log"])
+            streams = compute_loss_streams(detector(images), detector.anchors, targets, config["loss"], config["log"],
+                                           grid=detector.anchor_grid)
             optimizer.zero_grad()
             streams.total.backward()
             optimizer.step()

@@ -9,7 +9,7 @@ import torch
 import torch.nn.functional as F
 from torchvision.ops import box_iou, sigmoid_focal_loss
 
-from detdiff.model.anchors import BACKGROUND, make_anchors, match_anchors
+from detdiff.model.anchors import BACKGROUND, anchor_grid, make_anchors, match_anchors
 from detdiff.model.box_coder import BoxCoder
 from detdiff.model.losses import compute_loss_streams
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS
@@ -272,3 +272,19 @@ def test_unmatched_with_untrained_confident_logits_stays_bounded() -> None:
     assert torch.bincount(um["batch_index"], minlength=2).tolist() == [3, 3]
     assert (um["score"] >= 0.73 - 1e-6).all()                  # sigmoid(1) ~ 0.731
     assert (box_iou(um["box"][um["batch_index"] == 0], targets[0]["boxes"]) < 0.3).all()
+
+
+@pytest.mark.parametrize("kind", ["focal", "hard_negative"])
+@pytest.mark.parametrize("min_anchors", [1, 3])
+def test_streams_with_the_anchor_grid_equal_streams_without(kind: str, min_anchors: int) -> None:
+    # matching near each box (the training path) must log exactly what matching against every anchor logs
+    grid = anchor_grid(64, (8, 16), (16, 32), (1.0,), (0.5, 1.0, 2.0))
+    assert torch.equal(grid.boxes(), ANCHORS)
+    outputs, targets = make_batch([3, 0, 7, 1, 12], seed=4, logit_scale=3.0)
+    cfg = loss_cfg(classification=kind, min_anchors=min_anchors)
+    full = compute_loss_streams(outputs, ANCHORS, targets, cfg, LOG_CFG)
+    near = compute_loss_streams(outputs, ANCHORS, targets, cfg, LOG_CFG, grid=grid)
+    assert torch.equal(full.total, near.total)
+    for part in ("image", "objects", "unmatched"):
+        a, b = getattr(full, part), getattr(near, part)
+        assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a), part

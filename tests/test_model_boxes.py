@@ -9,7 +9,8 @@ import torch
 from hypothesis import given, settings, strategies as st
 from torchvision.ops import box_iou
 
-from detdiff.model.anchors import BACKGROUND, IGNORED, anchor_shapes, make_anchors, match_anchors, match_batched
+from detdiff.model.anchors import (BACKGROUND, IGNORED, anchor_grid, anchor_shapes, make_anchors, match_anchors,
+                                   match_batched, match_near, overlapping_pairs, pair_iou)
 from detdiff.model.box_coder import BoxCoder, xyxy_to_cxcywh
 from detdiff.model.losses import paired_box_iou
 
@@ -144,3 +145,64 @@ def test_batched_matching_equals_per_image(counts: list[int], seed: int) -> None
         for k, g in enumerate(gts):
             single = match_anchors(anchors, g, 0.5, 0.4, min_anchors=k_min)
             assert torch.equal(matched[k], single)
+
+
+GRIDS = [anchor_grid(64, (8, 16, 32), (16, 32, 64), (0.5, 1.0, 1.6), (0.5, 1.0, 2.0)),
+         anchor_grid(96, (8, 16, 32), (1, 1, 1), (1.0,), (1.0,),
+                     [[[5, 7], [9, 4], [12, 12]], [[20, 30], [25, 25], [40, 18]], [[50, 60], [70, 40], [90, 90]]])]
+
+
+def grid_batch(counts: list[int], seed: int, size: int, integer: bool) -> list[torch.Tensor]:
+    """Boxes of every size (a few px to most of the view), some reaching outside it; ``integer``: whole-pixel
+    corners, which make many anchors tie on IoU."""
+    g = torch.Generator().manual_seed(seed)
+    out = []
+    for n in counts:
+        xy = torch.rand(n, 2, generator=g) * size * 1.1 - size * 0.05
+        wh = 0.5 + torch.rand(n, 2, generator=g) ** 3 * size * 0.8
+        if integer:
+            xy, wh = xy.floor(), wh.ceil()
+        out.append(torch.cat((xy, xy + wh), 1))
+    return out
+
+
+@pytest.mark.parametrize("grid", GRIDS)
+def test_grid_boxes_equal_make_anchors_and_pairs_cover_every_overlap(grid) -> None:
+    # reference: torchvision.ops.box_iou over all (anchor, box) pairs; every pair with IoU > 0 must be listed,
+    # and each listed IoU must equal torchvision's bit for bit
+    anchors = grid.boxes()
+    shapes = [[list(wh) for wh in level] for level in grid.shapes]
+    assert torch.equal(anchors, make_anchors(grid.image_size, grid.strides, (1,) * 3, (1.0,), (1.0,), shapes))
+    boxes = torch.cat(grid_batch([40], 3, grid.image_size, integer=False))
+    box, anchor = overlapping_pairs(grid, boxes)
+    full = box_iou(anchors, boxes)                                              # [N, T]
+    listed = torch.zeros_like(full, dtype=torch.bool)
+    listed[anchor, box] = True
+    assert not (full > 0)[~listed].any()
+    assert torch.equal(pair_iou(anchors[anchor], boxes[box]), full[anchor, box])
+    assert len(box) < full.numel()
+
+
+@settings(max_examples=30, deadline=None)
+@given(counts=st.lists(st.integers(0, 25), min_size=1, max_size=5), seed=st.integers(0, 1000),
+       which=st.integers(0, 1), integer=st.booleans(), k_min=st.sampled_from([1, 3]))
+def test_matching_near_equals_full_matching(counts: list[int], seed: int, which: int, integer: bool,
+                                            k_min: int) -> None:
+    # reference: match_batched on the full padded IoU matrix from torchvision.ops.box_iou, ties included
+    grid = GRIDS[which]
+    anchors = grid.boxes()
+    gts = grid_batch(counts, seed, grid.image_size, integer)
+    width = max(max(counts), 1)
+    pad = torch.zeros((len(counts), width, 4))
+    valid = torch.zeros((len(counts), width), dtype=torch.bool)
+    for k, g in enumerate(gts):
+        pad[k, : len(g)] = g
+        valid[k, : len(g)] = True
+    iou = box_iou(anchors, pad.reshape(-1, 4)).reshape(len(anchors), len(counts), width).permute(1, 0, 2)
+    matched, best = match_batched(iou, valid, 0.5, 0.4, min_anchors=k_min)
+    image = torch.repeat_interleave(torch.arange(len(counts)), torch.tensor(counts))
+    slot = torch.cat([torch.arange(n) for n in counts])
+    near, near_best = match_near(anchors, grid, torch.cat(gts), image, slot, len(counts), 0.5, 0.4,
+                                 min_anchors=k_min)
+    assert torch.equal(near, matched)
+    assert torch.equal(near_best, best[image, slot])

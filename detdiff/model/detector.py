@@ -33,7 +33,7 @@ import torch
 from torch import nn
 import torch.nn.functional as F
 
-from detdiff.model.anchors import make_anchors
+from detdiff.model.anchors import anchor_grid
 
 log = logging.getLogger(__name__)
 
@@ -165,8 +165,8 @@ class Detector(nn.Module):
                              anchor_ratios=list(anchor_ratios),
                              anchor_shapes=None if anchor_shapes is None else [[list(map(float, wh)) for wh in lvl]
                                                                                for lvl in anchor_shapes])
-        self.register_buffer("anchors", make_anchors(image_size, strides, anchor_sizes, anchor_scales,
-                                                     anchor_ratios, anchor_shapes), persistent=False)
+        self.anchor_grid = anchor_grid(image_size, strides, anchor_sizes, anchor_scales, anchor_ratios, anchor_shapes)
+        self.register_buffer("anchors", self.anchor_grid.boxes(), persistent=False)
         self.backbone = Backbone(width, strides)
         self.neck = Neck(self.backbone.channels, head_width)
         per_location = len(anchor_scales) * len(anchor_ratios) if anchor_shapes is None else len(anchor_shapes[0])

@@ -39,7 +39,7 @@ import torch
 import torch.nn.functional as F
 from torchvision.ops import batched_nms, box_iou, sigmoid_focal_loss
 
-from detdiff.model.anchors import BACKGROUND, match_batched
+from detdiff.model.anchors import BACKGROUND, AnchorGrid, match_batched, match_near
 from detdiff.model.box_coder import BoxCoder
 
 #: Candidates per image (highest class scores) considered for unmatched detections, before NMS.
@@ -113,7 +113,8 @@ def classification_loss(logits: torch.Tensor, target: torch.Tensor, loss_cfg: di
 
 
 def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets: list[dict[str, torch.Tensor]],
-                         loss_cfg: dict[str, Any], log_cfg: dict[str, Any], *, per_item: bool = True) -> LossStreams:
+                         loss_cfg: dict[str, Any], log_cfg: dict[str, Any], *, per_item: bool = True,
+                         grid: AnchorGrid | None = None) -> LossStreams:
     """Match anchors, compute the three streams per anchor and reduce them per image and per object.
 
     Parameters
@@ -123,6 +124,8 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
     targets : per image ``{"boxes": [n_b, 4] xyxy view px, "labels": int64 [n_b]}`` (``n_b`` may be 0).
     loss_cfg, log_cfg : ``config['loss']`` and ``config['log']``.
     per_item : also compute the detached per-object records and unmatched detections.
+    grid : the layout of ``anchors`` (``Detector.anchor_grid``). With it each box is compared with the anchors near
+        it only (:func:`detdiff.model.anchors.match_near`, the same matching); without it, with every anchor.
     """
     logits, deltas = outputs["cls_logits"], outputs["box_deltas"]
     batch, num_anchors, num_classes = logits.shape
@@ -139,15 +142,19 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
     offsets = torch.cumsum(counts, 0) - counts                                                   # [B]
     obj_slot = torch.arange(num_obj, device=device) - offsets[obj_image]                         # [T]
 
-    # Pad boxes to the batch maximum and match every image with one IoU call: [B, N, G].
+    # Boxes padded to the batch maximum [B, G] (the unmatched detections are compared with them).
     gt_pad = torch.zeros((batch, max_gt, 4), device=device)
     gt_pad[obj_image, obj_slot] = gt_boxes
     gt_valid = torch.zeros((batch, max_gt), dtype=torch.bool, device=device)
     gt_valid[obj_image, obj_slot] = True
-    iou = box_iou(anchors, gt_pad.reshape(-1, 4)).reshape(num_anchors, batch, max_gt).permute(1, 0, 2)
-    matched, gt_best_anchor = match_batched(iou, gt_valid, loss_cfg["pos_iou"], loss_cfg["neg_iou"],
-                                            min_anchors=int(loss_cfg["min_anchors"]),
-                                            min_anchor_iou=float(loss_cfg["min_anchor_iou"]))
+    match = dict(min_anchors=int(loss_cfg["min_anchors"]), min_anchor_iou=float(loss_cfg["min_anchor_iou"]))
+    if grid is not None and match["min_anchor_iou"] > 0 and loss_cfg["neg_iou"] > 0:
+        matched, best_anchor = match_near(anchors, grid, gt_boxes, obj_image, obj_slot, batch, loss_cfg["pos_iou"],
+                                          loss_cfg["neg_iou"], **match)
+    else:                               # every image with one IoU call: [B, N, G]
+        iou = box_iou(anchors, gt_pad.reshape(-1, 4)).reshape(num_anchors, batch, max_gt).permute(1, 0, 2)
+        matched, gt_best_anchor = match_batched(iou, gt_valid, loss_cfg["pos_iou"], loss_cfg["neg_iou"], **match)
+        best_anchor = gt_best_anchor[obj_image, obj_slot]
 
     positive = matched >= 0                                                                       # [B, N]
     background = matched == BACKGROUND
@@ -185,7 +192,7 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
 
     with torch.no_grad():
         objects = _object_records(logits.detach(), deltas.detach(), anchors, coder, gt_boxes, gt_labels,
-                                  obj_image, obj_slot, gt_best_anchor, pos_b, pos_n, pos_obj,
+                                  obj_image, best_anchor, pos_b, pos_n, pos_obj,
                                   loc_anchor.detach(), pos_anchor.detach(), loss_cfg, log_cfg)
         unmatched = _unmatched_detections(logits.detach(), deltas.detach(), anchors, coder, gt_pad, gt_valid,
                                           log_cfg)
@@ -193,8 +200,8 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
 
 
 def _object_records(logits: torch.Tensor, deltas: torch.Tensor, anchors: torch.Tensor, coder: BoxCoder,
-                    gt_boxes: torch.Tensor, gt_labels: torch.Tensor, obj_image: torch.Tensor, obj_slot: torch.Tensor,
-                    gt_best_anchor: torch.Tensor, pos_b: torch.Tensor, pos_n: torch.Tensor, pos_obj: torch.Tensor,
+                    gt_boxes: torch.Tensor, gt_labels: torch.Tensor, obj_image: torch.Tensor,
+                    best_anchor: torch.Tensor, pos_b: torch.Tensor, pos_n: torch.Tensor, pos_obj: torch.Tensor,
                     loc_anchor: torch.Tensor, pos_anchor: torch.Tensor, loss_cfg: dict[str, Any],
                     log_cfg: dict[str, Any]) -> dict[str, torch.Tensor]:
     """Per-object fields (see ``loss_log.OBJECT_FIELDS``) from the per-anchor values, all ``[T]`` or ``[T, 4]``.
@@ -216,7 +223,7 @@ def _object_records(logits: torch.Tensor, deltas: torch.Tensor, anchors: torch.T
     orphan = (num_anchors == 0).nonzero(as_tuple=True)[0]
     orphan_b = obj_image[orphan]
     att_b = torch.cat((pos_b, orphan_b))                                       # [Q] attributed anchors
-    att_n = torch.cat((pos_n, gt_best_anchor[orphan_b, obj_slot[orphan]]))
+    att_n = torch.cat((pos_n, best_anchor[orphan]))
     att_obj = torch.cat((pos_obj, orphan))
     att_logits = logits[att_b, att_n]                                          # [Q, C]
     att_count = torch.bincount(att_obj, minlength=num_obj).clamp(min=1)

@@ -8,7 +8,10 @@
 4. FLOPs per image (forward + backward, ``torch.utils.flop_counter.FlopCounterMode``) and the achieved
    GFLOP/s as a share of the float32 matmul rate measured in the same run;
 5. ours vs stock ssdlite320 (weights=None, from scratch) images/s at the same input size and batch
-   (goal: ratio >= 6; ours alone: >= 100 img/s at 256 px, batch 16, 2 threads).
+   (goal: ratio >= 6; ours alone: >= 100 img/s at 256 px, batch 16, 2 threads);
+6. dense images (``DENSE_OBJECTS`` boxes of 3-40 px per image at 512 px, as aerial views and their tiles): the
+   loss streams with anchors matched near each box (``grid=``, the training path) against every anchor compared
+   with every box (the full IoU matrix; the same matching), and whole training steps both ways.
 
 A/B timings are interleaved (A, B, A, B, ...) so that load from other processes hits both; each figure is a
 median over rounds after warm-up (overhead ratios: the median of the per-round ratios). Run: ``.venv/bin/python tests/benchmarks/bench_detector.py [--quick]``.
@@ -40,18 +43,23 @@ VIEW_SCALE = 0.8           # 320 px originals letterboxed to 256
 GOAL_OVERHEAD = 1.03
 GOAL_IMG_PER_S = 100.0
 GOAL_VS_STOCK = 6.0
+#: Boxes per image and view side of the dense case (about an aerial scenario's tiles: 55 boxes per image).
+DENSE_OBJECTS, DENSE_SIZE = 60, 512
+#: The view of the speed goals (the recipe picks each dataset's own).
+GOAL_SIZE = 256
 
 
-def synthetic_batch(batch: int, size: int, seed: int) -> tuple[torch.Tensor, list[dict[str, torch.Tensor]]]:
-    """Random images ``[B, 3, S, S]`` in 0..1 and ``OBJECTS_PER_IMAGE`` boxes per image, 6-25% of the side."""
+def synthetic_batch(batch: int, size: int, seed: int, objects: int = OBJECTS_PER_IMAGE,
+                    sides: tuple[float, float] = (0.06, 0.25)) -> tuple[torch.Tensor, list[dict[str, torch.Tensor]]]:
+    """Random images ``[B, 3, S, S]`` in 0..1 and ``objects`` boxes per image, ``sides`` of the view side."""
     g = torch.Generator().manual_seed(seed)
     images = torch.rand(batch, 3, size, size, generator=g)
     targets = []
     for _ in range(batch):
-        wh = size * (0.06 + 0.19 * torch.rand(OBJECTS_PER_IMAGE, 2, generator=g))
-        xy = (size - wh) * torch.rand(OBJECTS_PER_IMAGE, 2, generator=g)
+        wh = size * (sides[0] + (sides[1] - sides[0]) * torch.rand(objects, 2, generator=g))
+        xy = (size - wh) * torch.rand(objects, 2, generator=g)
         targets.append({"boxes": torch.cat((xy, xy + wh), 1),
-                        "labels": torch.randint(0, NUM_CLASSES, (OBJECTS_PER_IMAGE,), generator=g)})
+                        "labels": torch.randint(0, NUM_CLASSES, (objects,), generator=g)})
     return images, targets
 
 
@@ -83,16 +91,17 @@ def paired_ratio(steps: dict[str, Callable[[], object]], warmup: int, rounds: in
 class OursTrainer:
     """One training step of the default detector: forward, loss streams, backward, AdamW step."""
 
-    def __init__(self, config: dict, size: int, batch: int, seed: int = 0) -> None:
+    def __init__(self, config: dict, size: int, batch: int, seed: int = 0, **boxes) -> None:
         torch.manual_seed(seed)
         self.config = config
         self.model = Detector.from_config(config["model"], NUM_CLASSES, size)
         self.optimizer = torch.optim.AdamW(self.model.parameters(), lr=1e-3)
-        self.images, self.targets = synthetic_batch(batch, size, seed)
+        self.images, self.targets = synthetic_batch(batch, size, seed, **boxes)
 
-    def step(self, per_item: bool = False):
+    def step(self, per_item: bool = False, near: bool = True):
         streams = compute_loss_streams(self.model(self.images), self.model.anchors, self.targets,
-                                       self.config["loss"], self.config["log"], per_item=per_item)
+                                       self.config["loss"], self.config["log"], per_item=per_item,
+                                       grid=self.model.anchor_grid if near else None)
         self.optimizer.zero_grad(set_to_none=True)
         streams.total.backward()
         self.optimizer.step()
@@ -191,7 +200,7 @@ def main(argv: list[str] | None = None) -> int:
     torch.set_num_threads(args.threads)
     warmup, rounds = (1, 3) if args.quick else (3, 9)
     config = load_config()
-    size, batch = config["data"]["image_size"], config["train"]["batch_size"]
+    size, batch = GOAL_SIZE, int(config["train"]["batch_size"])
     rows: list[tuple[str, str, str]] = []
 
     # (1) logging overhead, ours
@@ -235,6 +244,24 @@ def main(argv: list[str] | None = None) -> int:
     rows.append((f"train img/s, stock ssdlite320 at {size} px, batch {batch}", f"{batch / t['stock']:.1f}", ""))
     rows.append(("train img/s, ours (same rounds)", f"{batch / t['ours']:.1f}", ""))
     rows.append(("speed ratio ours / stock", f"{t['stock'] / t['ours']:.1f}x", f">= {GOAL_VS_STOCK:.0f}"))
+
+    # (6) dense images: matching near each box vs against every anchor, the loss alone and whole steps
+    dense = OursTrainer(config, DENSE_SIZE, batch, objects=DENSE_OBJECTS, sides=(3 / DENSE_SIZE, 40 / DENSE_SIZE))
+    with torch.no_grad():
+        outputs = dense.model(dense.images)
+
+    def losses(near: bool) -> Callable[[], object]:
+        grid = dense.model.anchor_grid if near else None
+        return lambda: compute_loss_streams(outputs, dense.model.anchors, dense.targets, config["loss"],
+                                            config["log"], grid=grid)
+
+    t = interleaved({"every": losses(False), "near": losses(True)}, 1, max(3, rounds // 2))
+    rows.append((f"loss streams, {DENSE_OBJECTS} boxes/img at {DENSE_SIZE} px: every anchor / near each box",
+                 f"{t['every']:.3f} / {t['near']:.3f} s = {t['every'] / t['near']:.1f}x", ""))
+    t = interleaved({"every": lambda: dense.step(True, near=False), "near": lambda: dense.step(True)}, 1,
+                    max(3, rounds // 2))
+    rows.append(("training step, same batch: every anchor / near each box",
+                 f"{t['every']:.3f} / {t['near']:.3f} s = {t['every'] / t['near']:.1f}x", ""))
 
     width = max(len(r[0]) for r in rows)
     print(f"detector benchmark: {args.threads} threads, torch {torch.__version__}, batch {batch}")

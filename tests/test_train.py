@@ -165,8 +165,8 @@ def test_nan_loss_raises_training_diverged_and_keeps_finished_epochs(tiny, tmp_p
     real = loop.compute_loss_streams
     calls = {"n": 0}
 
-    def poisoned(outputs, anchors, targets, loss_cfg, log_cfg):
-        streams = real(outputs, anchors, targets, loss_cfg, log_cfg)
+    def poisoned(outputs, anchors, targets, loss_cfg, log_cfg, **options):
+        streams = real(outputs, anchors, targets, loss_cfg, log_cfg, **options)
         calls["n"] += 1
         if calls["n"] == 5:                       # 24 usable images / batch 8 = 3 batches: epoch 1, batch 1
             streams.image["loc_sum"][2] = float("nan")

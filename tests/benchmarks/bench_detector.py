@@ -186,7 +186,8 @@ def step_flops(trainer: OursTrainer) -> float:
     counter = FlopCounterMode(display=False)
     with counter:
         streams = compute_loss_streams(trainer.model(trainer.images), trainer.model.anchors, trainer.targets,
-                                       trainer.config["loss"], trainer.config["log"], per_item=False)
+                                       trainer.config["loss"], trainer.config["log"], per_item=False,
+                                       grid=trainer.model.anchor_grid)
         streams.total.backward()
     trainer.optimizer.zero_grad(set_to_none=True)
     return float(counter.get_total_flops())

@@ -204,7 +204,8 @@ def phase_train(args: dict) -> dict:
             start = time.perf_counter()
             b = make(idx[k * batch:(k + 1) * batch])
             loaded = time.perf_counter()
-            streams = compute_loss_streams(model(b.images), model.anchors, b.targets, config["loss"], config["log"])
+            streams = compute_loss_streams(model(b.images), model.anchors, b.targets, config["loss"], config["log"],
+                                           grid=model.anchor_grid)
             optimizer.zero_grad()
             streams.total.backward()
             optimizer.step()

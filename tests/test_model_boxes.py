@@ -127,19 +127,25 @@ def test_matching_without_boxes_is_all_background() -> None:
     assert (matched == BACKGROUND).all()
 
 
+def padded_iou(anchors: torch.Tensor, gts: list[torch.Tensor]) -> tuple[torch.Tensor, torch.Tensor]:
+    """``iou [B, N, G]`` of every anchor with each image's boxes padded to the batch's most (torchvision's
+    box_iou) and ``valid [B, G]``."""
+    width = max(max(len(g) for g in gts), 1)
+    pad = torch.zeros((len(gts), width, 4))
+    valid = torch.zeros((len(gts), width), dtype=torch.bool)
+    for k, g in enumerate(gts):
+        pad[k, : len(g)] = g
+        valid[k, : len(g)] = True
+    return box_iou(anchors, pad.reshape(-1, 4)).reshape(len(anchors), len(gts), width).permute(1, 0, 2), valid
+
+
 @settings(max_examples=25, deadline=None)
 @given(counts=st.lists(st.integers(0, 6), min_size=1, max_size=4), seed=st.integers(0, 1000))
 def test_batched_matching_equals_per_image(counts: list[int], seed: int) -> None:
     # padding the boxes of a batch must not change any image's matching (reference: per-image match_anchors)
     anchors = make_anchors(64, (8, 16), (16, 32), (1.0,), (0.5, 1.0, 2.0))
     gts = [random_boxes(n, seed + k, size=56.0) for k, n in enumerate(counts)]
-    width = max(counts)
-    pad = torch.zeros((len(counts), width, 4))
-    valid = torch.zeros((len(counts), width), dtype=torch.bool)
-    for k, g in enumerate(gts):
-        pad[k, : len(g)] = g
-        valid[k, : len(g)] = True
-    iou = box_iou(anchors, pad.reshape(-1, 4)).reshape(len(anchors), len(counts), width).permute(1, 0, 2)
+    iou, valid = padded_iou(anchors, gts)
     for k_min in (1, 3):
         matched, _ = match_batched(iou, valid, 0.5, 0.4, min_anchors=k_min)
         for k, g in enumerate(gts):
@@ -192,13 +198,7 @@ def test_matching_near_equals_full_matching(counts: list[int], seed: int, which:
     grid = GRIDS[which]
     anchors = grid.boxes()
     gts = grid_batch(counts, seed, grid.image_size, integer)
-    width = max(max(counts), 1)
-    pad = torch.zeros((len(counts), width, 4))
-    valid = torch.zeros((len(counts), width), dtype=torch.bool)
-    for k, g in enumerate(gts):
-        pad[k, : len(g)] = g
-        valid[k, : len(g)] = True
-    iou = box_iou(anchors, pad.reshape(-1, 4)).reshape(len(anchors), len(counts), width).permute(1, 0, 2)
+    iou, valid = padded_iou(anchors, gts)
     matched, best = match_batched(iou, valid, 0.5, 0.4, min_anchors=k_min)
     image = torch.repeat_interleave(torch.arange(len(counts)), torch.tensor(counts))
     slot = torch.cat([torch.arange(n) for n in counts])

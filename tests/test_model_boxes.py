@@ -10,9 +10,9 @@ from hypothesis import given, settings, strategies as st
 from torchvision.ops import box_iou
 
 from detdiff.model.anchors import (BACKGROUND, IGNORED, anchor_grid, anchor_shapes, make_anchors, match_anchors,
-                                   match_batched, match_near, overlapping_pairs, pair_iou)
+                                   match_batched, match_near, overlapping_pairs)
 from detdiff.model.box_coder import BoxCoder, xyxy_to_cxcywh
-from detdiff.model.losses import paired_box_iou
+from detdiff.model.box_coder import paired_box_iou
 
 
 def random_boxes(n: int, seed: int, size: float = 100.0) -> torch.Tensor:
@@ -185,7 +185,7 @@ def test_grid_boxes_equal_make_anchors_and_pairs_cover_every_overlap(grid) -> No
     listed = torch.zeros_like(full, dtype=torch.bool)
     listed[anchor, box] = True
     assert not (full > 0)[~listed].any()
-    assert torch.equal(pair_iou(anchors[anchor], boxes[box]), full[anchor, box])
+    assert torch.equal(paired_box_iou(anchors[anchor], boxes[box]), full[anchor, box])
     assert len(box) < full.numel()
 
 

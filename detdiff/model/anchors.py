@@ -19,6 +19,8 @@ from dataclasses import dataclass
 import torch
 from torchvision.ops import box_iou
 
+from detdiff.model.box_coder import paired_box_iou
+
 BACKGROUND = -1
 IGNORED = -2
 
@@ -38,10 +40,6 @@ class AnchorGrid:
     image_size: int
     strides: tuple[int, ...]
     shapes: tuple[tuple[tuple[float, float], ...], ...]
-
-    @property
-    def per_location(self) -> int:
-        return len(self.shapes[0])
 
     def level_offsets(self) -> list[int]:
         """Index of the first anchor of each level."""
@@ -122,18 +120,6 @@ def overlapping_pairs(grid: AnchorGrid, boxes: torch.Tensor) -> tuple[torch.Tens
     return torch.cat(box_parts), torch.cat(anchor_parts)
 
 
-def pair_iou(anchors: torch.Tensor, boxes: torch.Tensor) -> torch.Tensor:
-    """IoU of corresponding rows of ``anchors [P, 4]`` and ``boxes [P, 4]`` (xyxy), with the operations of
-    :func:`torchvision.ops.box_iou` in its order, so each value equals that function's bit for bit."""
-    area_a = (anchors[:, 2] - anchors[:, 0]) * (anchors[:, 3] - anchors[:, 1])
-    area_b = (boxes[:, 2] - boxes[:, 0]) * (boxes[:, 3] - boxes[:, 1])
-    lt = torch.max(anchors[:, :2], boxes[:, :2])
-    rb = torch.min(anchors[:, 2:], boxes[:, 2:])
-    wh = (rb - lt).clamp(min=0)
-    inter = wh[:, 0] * wh[:, 1]
-    return inter / (area_a + area_b - inter)
-
-
 def match_batched(iou: torch.Tensor, gt_valid: torch.Tensor, pos_iou: float, neg_iou: float, *,
                   min_anchors: int = 1, min_anchor_iou: float = 0.2) -> tuple[torch.Tensor, torch.Tensor]:
     """SSD matching for a padded batch: ``iou [B, N, G]``, ``gt_valid bool [B, G]``.
@@ -201,7 +187,7 @@ def match_near(anchors: torch.Tensor, grid: AnchorGrid, gt_boxes: torch.Tensor, 
     if num_obj == 0 or num_anchors == 0:
         return matched, torch.zeros(num_obj, dtype=torch.int64, device=device)
     pair_box, pair_anchor = overlapping_pairs(grid, gt_boxes)
-    iou = pair_iou(anchors[pair_anchor], gt_boxes[pair_box])                          # [P]
+    iou = paired_box_iou(anchors[pair_anchor], gt_boxes[pair_box])                        # [P]
     key = obj_image[pair_box] * num_anchors + pair_anchor                             # anchor of its image
     has_box = torch.bincount(obj_image, minlength=batch) > 0
     best_iou = torch.where(has_box, 0.0, -1.0).to(iou.dtype).repeat_interleave(num_anchors)  # not near a box: 0

@@ -65,3 +65,19 @@ class BoxCoder:
         half_w = 0.5 * a[..., 2] * torch.exp((deltas[..., 2] * v2).clamp(max=MAX_LOG_SCALE))
         half_h = 0.5 * a[..., 3] * torch.exp((deltas[..., 3] * v3).clamp(max=MAX_LOG_SCALE))
         return torch.stack((cx - half_w, cy - half_h, cx + half_w, cy + half_h), dim=-1)
+
+
+def paired_box_iou(boxes1: torch.Tensor, boxes2: torch.Tensor) -> torch.Tensor:
+    """IoU of corresponding xyxy boxes, broadcasting leading dims: ``[..., 4], [..., 4] -> [...]``.
+
+    The element-wise counterpart of :func:`torchvision.ops.box_iou` (which gives all pairs), with its operations in
+    its order: for boxes of positive area each value equals that function's bit for bit (anchor matching relies
+    on it, :func:`detdiff.model.anchors.match_near`).
+    """
+    lt = torch.maximum(boxes1[..., :2], boxes2[..., :2])
+    rb = torch.minimum(boxes1[..., 2:], boxes2[..., 2:])
+    inter = (rb - lt).clamp(min=0).prod(-1)
+    area1 = (boxes1[..., 2:] - boxes1[..., :2]).clamp(min=0).prod(-1)
+    area2 = (boxes2[..., 2:] - boxes2[..., :2]).clamp(min=0).prod(-1)
+    union = area1 + area2 - inter
+    return torch.where(union > 0, inter / union.clamp(min=1e-12), torch.zeros_like(inter))

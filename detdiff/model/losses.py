@@ -40,7 +40,7 @@ import torch.nn.functional as F
 from torchvision.ops import batched_nms, box_iou, sigmoid_focal_loss
 
 from detdiff.model.anchors import BACKGROUND, AnchorGrid, match_batched, match_near
-from detdiff.model.box_coder import BoxCoder
+from detdiff.model.box_coder import BoxCoder, paired_box_iou
 
 #: Candidates per image (highest class scores) considered for unmatched detections, before NMS.
 UNMATCHED_PRE_NMS = 200
@@ -62,20 +62,6 @@ class LossStreams:
     image: dict[str, torch.Tensor]
     objects: dict[str, torch.Tensor] | None = None
     unmatched: dict[str, torch.Tensor] | None = None
-
-
-def paired_box_iou(boxes1: torch.Tensor, boxes2: torch.Tensor) -> torch.Tensor:
-    """IoU of corresponding xyxy boxes, broadcasting leading dims: ``[..., 4], [..., 4] -> [...]``.
-
-    The element-wise counterpart of :func:`torchvision.ops.box_iou` (which gives all pairs).
-    """
-    lt = torch.maximum(boxes1[..., :2], boxes2[..., :2])
-    rb = torch.minimum(boxes1[..., 2:], boxes2[..., 2:])
-    inter = (rb - lt).clamp(min=0).prod(-1)
-    area1 = (boxes1[..., 2:] - boxes1[..., :2]).clamp(min=0).prod(-1)
-    area2 = (boxes2[..., 2:] - boxes2[..., :2]).clamp(min=0).prod(-1)
-    union = area1 + area2 - inter
-    return torch.where(union > 0, inter / union.clamp(min=1e-12), torch.zeros_like(inter))
 
 
 def _check_targets(targets: list[dict[str, torch.Tensor]], batch: int, num_classes: int) -> None:

@@ -106,7 +106,7 @@ def train_one_epoch(state: TrainState, batches: list[np.ndarray], make_batch: Ba
     """
     cfg = state.config
     grad_clip = float(cfg["train"]["grad_clip"] or 0.0)
-    model, anchors, grid = state.model, unwrap_model(state.model).anchors, unwrap_model(state.model).anchor_grid
+    model, detector = state.model, unwrap_model(state.model)
     model.train()
     for hook in hooks:
         hook.before_epoch(state)
@@ -116,7 +116,8 @@ def train_one_epoch(state: TrainState, batches: list[np.ndarray], make_batch: Ba
         batch = make_batch(index)
         data_seconds += time.perf_counter() - t0
         outputs = model(batch.images)
-        streams = compute_loss_streams(outputs, anchors, batch.targets, cfg["loss"], cfg["log"], grid=grid)
+        streams = compute_loss_streams(outputs, detector.anchors, batch.targets, cfg["loss"], cfg["log"],
+                                       grid=detector.anchor_grid)
         if not ddp.all_true(bool(torch.isfinite(streams.total)), state.info):
             raise _diverged(state, number, batch, streams, "the loss is not finite")
         state.optimizer.zero_grad(set_to_none=True)

@@ -18,6 +18,7 @@ import signal
 import subprocess
 import sys
 import textwrap
+import threading
 import time
 from pathlib import Path
 from types import SimpleNamespace
@@ -184,7 +185,7 @@ def test_interrupted_cache_build_decodes_only_the_rest_and_equals_a_clean_build(
     assert sorted(p.name for p in (tmp_path / "cache").iterdir()) == sorted(p.name for p in clean.cache_dir.iterdir())
 
 
-WORKERS_CHILD = textwrap.dedent("""
+WORKERS_CHILD = textwrap.dedent(r"""
     import os, sys, time
     from detdiff.data import image_cache
     from detdiff.data.coco import build_dataset, read_coco_json
@@ -212,11 +213,16 @@ def test_decode_workers_end_quietly_with_their_killed_parent(tmp_path):
     seen: set[str] = set()
     while len(seen) < 2:
         line = proc.stdout.readline()
-        assert line, "the child ended before both workers ran"
+        assert line.startswith("worker "), f"the child ended or failed before both workers ran: {line!r}"
         seen.add(line.split()[1])
     os.kill(proc.pid, signal.SIGKILL)
-    rest = proc.communicate(timeout=30)[0]            # returns once no worker holds the pipe any more
-    assert "Traceback" not in rest and "Error" not in rest, rest
+    rest: list[str] = []                                  # read() returns once no worker holds the pipe any more
+    reader = threading.Thread(target=lambda: rest.append(proc.stdout.read()), daemon=True)
+    reader.start()
+    reader.join(timeout=30)
+    assert rest, "a decode worker outlived its killed parent by 30 s"
+    assert "Traceback" not in rest[0] and "Error" not in rest[0], rest[0]
+    proc.wait(timeout=30)
     time.sleep(0.2)
     for pid in seen:
         assert not Path(f"/proc/{pid}").exists() or "Z" in Path(f"/proc/{pid}/stat").read_text().split()[2]

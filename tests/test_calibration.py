@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy.stats import mannwhitneyu
+from scipy.stats import mannwhitneyu, norm
 from sklearn.metrics import roc_auc_score
 
-from detdiff.analysis.calibration import (MAX_FAULT_SHARE, auroc_mann_whitney, calibrate, cut_list, fault_share,
-                                          hanley_mcneil_se)
+from detdiff.analysis.calibration import (MAX_FAULT_SHARE, PLATEAU_AGREEMENT, TAIL_GRID, TAIL_QUANTILES,
+                                          auroc_mann_whitney, calibrate, cut_list, fault_share, hanley_mcneil_se,
+                                          tail_ratios)
 
 
 def test_auroc_matches_scipy_and_sklearn() -> None:
@@ -53,6 +54,27 @@ def test_fault_share_and_posterior_recover_a_known_mixture() -> None:
     # the expected number of faults is close to the real count, and the AUROC correction goes the right way
     assert cal.expected_faults() == pytest.approx(faults.sum(), rel=0.15)
     assert cal.auroc >= cal.auroc_raw
+
+
+def test_fault_share_falls_back_to_the_quartile_median_where_the_ratios_keep_falling() -> None:
+    # Invented mixture with known tails: 6% faults N(3,1) among N(0,1) clean items, probes easier to spot (N(4,1)).
+    # The tail ratio at the probes' quantile q is (0.94 sf(t) + 0.06 sf(t - 3)) / (1 - q) at t = 4 + ppf(q)
+    # (normal survival and quantile functions: scipy.stats.norm); it falls all along, so no stretch is level.
+    rng = np.random.default_rng(5)
+    faults = rng.random(200000) < 0.06
+    scores = np.where(faults, rng.normal(3.0, 1.0, faults.size), rng.normal(0.0, 1.0, faults.size))
+    probes = rng.normal(4.0, 1.0, 40000)
+
+    def population(q: np.ndarray) -> np.ndarray:
+        t = 4.0 + norm.ppf(q)
+        return (0.94 * norm.sf(t) + 0.06 * norm.sf(t - 3.0)) / (1.0 - q)
+
+    grid = population(np.asarray(TAIL_GRID))
+    assert np.all(np.diff(grid) < 0) and np.all(grid[2:] / grid[:-2] < 1 / PLATEAU_AGREEMENT)
+    assert tail_ratios(scores, probes, TAIL_GRID) == pytest.approx(grid, rel=0.2)     # ~135 items past the last
+    assert fault_share(scores, probes) == pytest.approx(np.median(population(np.asarray(TAIL_QUANTILES))), rel=0.08)
+    # probes that score like the faults: the ratios level off at the share itself
+    assert fault_share(scores, rng.normal(3.0, 1.0, 40000)) == pytest.approx(0.06, abs=0.004)
 
 
 def test_cut_list_keeps_the_head_above_the_level_and_its_precision_holds() -> None:

@@ -8,6 +8,7 @@ cannot decode, OpenCV imgcodecs docs) and resizes the reference thumbnails; pand
 from __future__ import annotations
 
 import html
+import json
 import re
 import shutil
 import sys
@@ -23,6 +24,8 @@ import pytest
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from report_fixture import CATEGORIES, HOSTILE_CATEGORY, HOSTILE_FILE_NAME, make_run_folder  # noqa: E402
 
+from detdiff.analysis import self_check  # noqa: E402
+from detdiff.analysis.calibration import calibrate  # noqa: E402
 from detdiff.report.advice import cause_subject, significant_causes, sourcing_advice, spearman_phrase  # noqa: E402
 from detdiff.report.elements import el  # noqa: E402
 from detdiff.report.html import write_report  # noqa: E402
@@ -338,3 +341,31 @@ def test_images_to_recheck_for_a_missing_box(report):
     assert f"Look for an unannotated '{CATEGORIES[1][1]}' at [40, 30, 20, 16]" in section
     assert "Look for an unannotated object at [5, 6, 14, 12]" in section
     assert section.count("Look for an unannotated") == 2
+
+
+def test_list_precision_says_which_way_its_estimate_leans(tmp_path):
+    """On every validity audit the loose-box list's self-estimated precision read above the truth and the
+    missing-box one below (README "What to expect"): the summary, the advice and the report say "at most" /
+    "at least" there, "about" for wrong class. Scores: numpy normal samples, 5% faults 3 sd above the clean items."""
+    rundir = make_run_folder(tmp_path)
+    rng = np.random.default_rng(0)
+    cal = calibrate(np.concatenate([rng.normal(0, 1, 950), rng.normal(3, 1, 50)]), rng.normal(3, 1, 200))
+    listed = cal.posterior[cal.posterior >= 0.5]
+    checks = {kind: self_check.summary(kind, cal, items=1000, listed_p=listed, level=0.5)
+              for kind in self_check.FAULT_KINDS}
+    (rundir / "self_check.json").write_text(json.dumps(checks))
+    precision = float(np.mean(listed))
+    run = RunFolder.load(rundir)
+    assert run.expected_precision("loose_box") == (pytest.approx(precision, abs=1e-4), "at most")
+    assert run.expected_precision("missing_box")[1] == "at least"
+    assert run.expected_precision("wrong_class")[1] == "about"
+    summary = terminal_summary(rundir)
+    assert f"expected precision at most {precision:.2f}" in summary
+    assert f"expected precision at least {precision:.2f}" in summary
+    assert f"expected precision about {precision:.2f}" in summary
+    texts = " ".join(a.text for a in sourcing_advice(run))
+    assert f"(at most {precision:.0%} of them expected to be real faults" in texts
+    assert f"(about {precision:.0%} of them expected to be real faults" in texts
+    page = write_report(rundir, thumbnails=False)
+    body = page.read_text()
+    assert f"\u2264 {precision:.3f}" in body and f"\u2265 {precision:.3f}" in body

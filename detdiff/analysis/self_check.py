@@ -46,6 +46,12 @@ from detdiff.data.coco import CocoDataset
 FAULT_KINDS = ("wrong_class", "loose_box", "missing_box")
 #: Pseudo-count added to every class pair when drawing a probe's class (no pair is impossible).
 RUNNER_UP_PRIOR = 0.5
+#: The side of the truth a kind's expected list precision fell on in every validity audit (README "What to
+#: expect", seven audits of four scenarios), shown to users as "at most" / "at least". Loose box: the audit's
+#: loosened boxes are easier to spot than real subtle ones, so the estimate ran 0.00-0.29 above the true precision
+#: (0.26-0.29 on aerial views). Missing box: the share of faults among proposals is capped at one half, so it ran
+#: 0.07-0.35 below. Wrong class has no such side (within 0.08 either way) and reads as an estimate.
+PRECISION_BOUND = {"loose_box": "upper", "missing_box": "lower"}
 
 
 def class_margin(probs: np.ndarray, labels: np.ndarray) -> np.ndarray:
@@ -118,7 +124,8 @@ def _rounded(value: float | None, digits: int = 4) -> float | None:
 def summary(kind: str, cal: Calibration | None, *, items: int, listed_p: np.ndarray, level: float) -> dict:
     """The self-measured figures of one kind as they go into ``self_check.json``, ``run.json`` and the report:
     probes, AUROC with a 95% interval, estimated fault share and count, and the cut list's size and expected
-    precision (``listed_p``: the fault probabilities of the listed items)."""
+    precision (``listed_p``: the fault probabilities of the listed items) with the side of the truth it is
+    known to fall on (:data:`PRECISION_BOUND`)."""
     calibrated = cal is not None and cal.calibrated
     listed_p = np.asarray(listed_p, dtype=np.float64)
     out = {"kind": kind, "items": int(items), "probes": int(cal.num_probes) if cal is not None else 0,
@@ -132,6 +139,7 @@ def summary(kind: str, cal: Calibration | None, *, items: int, listed_p: np.ndar
     if calibrated:
         out.update({"expected_faults": _rounded(cal.expected_faults(), 1),
                     "expected_precision": _rounded(np.nanmean(listed_p)) if len(listed_p) else None,
+                    "expected_precision_bound": PRECISION_BOUND.get(kind, "estimate"),
                     "expected_found": _rounded(np.nansum(listed_p), 1)})
     return out
 

@@ -171,9 +171,10 @@ def suspect_advice(run: RunFolder) -> list[Advice]:
             clause = _share_clause(total, count, f"'{name}'") if name else ""
             verb, adjective = ("Tighten", "loose") if kind == "loose_box" else ("Remove", "duplicate")
             text = f"{verb} {_plural(total, adjective + ' box')}{clause}."
-        precision = run.list_check(kind).get("expected_precision")
-        if isinstance(precision, (int, float)):
-            text = text[:-1] + f" (about {precision:.0%} of them expected to be real faults, measured on this dataset)."
+        precision = run.expected_precision(kind)
+        if precision:
+            text = text[:-1] + (f" ({precision[1]} {precision[0]:.0%} of them expected to be real faults, measured on "
+                                f"this dataset).")
         out.append(Advice("relabel", text, float(total), emphasis=str(total)))
     return out
 

@@ -164,6 +164,17 @@ class RunFolder:
         value = self.self_check.get(kind)
         return value if isinstance(value, dict) else {}
 
+    def expected_precision(self, kind: str) -> tuple[float, str] | None:
+        """A list's self-estimated precision and its qualifier: ``"at most"`` where the estimate is known to read
+        high (loose boxes), ``"at least"`` where it reads low (missing boxes), ``"about"`` otherwise; None when the
+        run estimated none."""
+        check = self.list_check(kind)
+        value = check.get("expected_precision")
+        if not isinstance(value, (int, float)) or value != value:
+            return None
+        bound = check.get("expected_precision_bound")
+        return float(value), {"upper": "at most", "lower": "at least"}.get(bound, "about")
+
     def quality_warning(self) -> str:
         """One plain sentence when the detector is not trustworthy, else ``""``."""
         if self.trustworthy():

@@ -42,7 +42,9 @@ SELF_CHECK_NOTE = ("Before training, the audit made faults of its own: boxes lef
                    "that never trained on its image. How well each kind of planted fault ranks above the real "
                    "items is the audit's accuracy on this dataset (AUROC, 95% interval); the same scores estimate "
                    "each suspect's probability of being a real fault, and each list stops where that probability "
-                   "falls below the level shown. No planted fault is ever listed as a suspect.")
+                   "falls below the level shown. No planted fault is ever listed as a suspect. \u2264: the "
+                   "loose-box estimate reads high (the audit's loosened boxes are easier to spot than real subtle "
+                   "ones); \u2265: the missing-box estimate reads low.")
 MISSING_PLACES_NOTE = ("Every image ranked by its strongest detection that matches no annotation, in the late "
                        "epochs or after training (the dashed box): where an unannotated object is most likely, "
                        "whether or not it made the list above. A ranking, not a list of faults: the self-check's "
@@ -262,6 +264,16 @@ def _missing_places(page: Page) -> list[Markup]:
             el("p", {"class": "note"}, MISSING_PLACES_NOTE), el("div", {"class": "grid small"}, cards)]
 
 
+def _precision_cell(run: RunFolder, kind: str) -> Markup:
+    """A list's expected precision, marked "at most" / "at least" where the estimate is known to lean one way."""
+    precision = run.expected_precision(kind)
+    if precision is None:
+        return num_cell(None)
+    value, qualifier = precision
+    prefix = {"at most": "\u2264 ", "at least": "\u2265 "}.get(qualifier, "")
+    return num_cell(value, f"{prefix}{fmt(value)}")
+
+
 def _self_check_table(run: RunFolder) -> Markup | None:
     """One row per calibrated kind: probes, self-measured AUROC, fault share, list size and expected precision."""
     rows = []
@@ -277,7 +289,7 @@ def _self_check_table(run: RunFolder) -> Markup | None:
         rows.append([title, num_cell(check.get("probes")), num_cell(auroc, auroc_text), interval,
                      num_cell(check.get("fault_share"), format_percent(check["fault_share"])
                               if isinstance(check.get("fault_share"), (int, float)) else ""),
-                     num_cell(check.get("listed")), num_cell(check.get("expected_precision")),
+                     num_cell(check.get("listed")), _precision_cell(run, kind),
                      num_cell(check.get("level"))])
     if not rows:
         return None

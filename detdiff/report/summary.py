@@ -64,9 +64,9 @@ def self_check_lines(run: RunFolder) -> list[str]:
         if kind == "missing_box" and isinstance(auroc, (int, float)):
             found += " per image"
         if check.get("calibrated"):
-            precision = check.get("expected_precision")
-            listed = f"list of {check.get('listed', 0)}" + (f", expected precision {precision:.2f}"
-                                                             if isinstance(precision, (int, float)) else "")
+            precision = run.expected_precision(kind)
+            listed = f"list of {check.get('listed', 0)}" + (f", expected precision {precision[1]} {precision[0]:.2f}"
+                                                             if precision else "")
             share = check.get("fault_share")
             if isinstance(share, (int, float)):
                 listed += f"; about {share:.1%} of the {'proposals' if kind == 'missing_box' else 'boxes'} faulty"

@@ -54,9 +54,9 @@ FAULT_KINDS = ("wrong_class", "loose_box", "missing_box")
 #: Pseudo-count added to every class pair when drawing a probe's class (no pair is impossible).
 RUNNER_UP_PRIOR = 0.5
 #: The side of the truth a kind's expected list precision fell on in every validity audit (README "What to
-#: expect", seven audits of four scenarios), shown to users as "at most" / "at least". Loose box: the audit's
-#: loosened boxes are easier to spot than real subtle ones, so the estimate ran 0.00-0.29 above the true precision
-#: (0.26-0.29 on aerial views). Missing box: the share of faults among proposals is capped at one half, so it ran
+#: expect", eight audits of four scenarios, six with a missing-box list), shown to users as "at most" / "at least".
+#: Loose box: the audit's loosened boxes are easier to spot than real subtle ones, so the estimate ran 0.00-0.29
+#: above the true precision (0.26-0.29 on aerial views). Missing box: the share of faults among proposals is capped at one half, so it ran
 #: 0.07-0.35 below. Wrong class has no such side (within 0.08 either way) and reads as an estimate.
 PRECISION_BOUND = {"loose_box": "upper", "missing_box": "lower"}
 

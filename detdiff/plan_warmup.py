@@ -208,8 +208,9 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
         pixels = cm.resample(cache.crops[idx], windows, size, extent=extent)
         target = torch.from_numpy(target_in_window(units, windows))
         pixels, target = cm.flip_batch(pixels, target, (rng.random((len(idx), 3)) < 0.5) & allowed)
-        logits, boxes = model(pixels, geometry)
-        loss = cm.crop_loss(logits, boxes, labels, target)
+        with cm.training_autocast(str(cfg.get("precision", "auto"))):
+            logits, boxes = model(pixels, geometry)
+        loss = cm.crop_loss(logits.float(), boxes.float(), labels, target)
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
         optimizer.step()

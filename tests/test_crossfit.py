@@ -138,14 +138,16 @@ def _coloured_crops(ds: CocoDataset, rng: np.random.Generator) -> np.ndarray:
     return np.clip(crops.astype(np.int64) + noise, 0, 255).astype(np.uint8)
 
 
-def test_cross_fit_predicts_out_of_fold_and_resumes(tmp_path) -> None:
+@pytest.mark.parametrize("precision", ["float32", "bfloat16"])
+def test_cross_fit_predicts_out_of_fold_and_resumes(tmp_path, precision: str) -> None:
     rng = np.random.default_rng(5)
     ds = _dataset(60, 6, 3, rng)
     crops = _coloured_crops(ds, rng)
     truth = ds.labels.copy()
     wrong = rng.choice(ds.num_annotations, 12, replace=False)
     ds.labels[wrong] = (ds.labels[wrong] + 1) % 3                      # wrong labels the models must not learn
-    config = {"crossfit": {"folds": 3, "epochs": 6, "batch_size": 64, "lr": 0.003, "width": 8, "input_size": 16},
+    config = {"crossfit": {"folds": 3, "epochs": 6, "batch_size": 64, "lr": 0.003, "width": 8, "input_size": 16,
+                            "precision": precision},
               "train": {"flips": "horizontal", "seed": 0}}
     usable = np.ones(ds.num_images, bool)
     rows, boxes = box_probes(ds, np.arange(ds.num_annotations), seed=0)
@@ -161,6 +163,26 @@ def test_cross_fit_predicts_out_of_fold_and_resumes(tmp_path) -> None:
     assert saved is not None and np.allclose(saved.probs, result.probs)
     again = cross_fit(ds, ds, crops, usable, rows, boxes, config, tmp_path, progress=False)
     assert np.array_equal(again.probs, result.probs) and again.seconds == pytest.approx(result.seconds)
+
+
+def test_bfloat16_training_pass_matches_float32_within_bfloat16_rounding() -> None:
+    # The autocast pass rounds inputs and weights of convolutions and linear layers to bfloat16 (8 significant bits:
+    # torch.finfo(torch.bfloat16).eps = 2**-7, a torch reference value); through five layers the logits must stay
+    # within a few such steps of the float32 pass, and the weights themselves stay float32.
+    torch.manual_seed(0)
+    model = cm.CropModel(5, width=8, input_size=16)
+    pixels = torch.rand(64, 3, 16, 16).contiguous(memory_format=torch.channels_last)
+    geometry = torch.randn(64, 4)
+    with cm.training_autocast("float32"):
+        exact, _ = model(pixels, geometry)
+    with cm.training_autocast("bfloat16"):
+        rounded, box = model(pixels, geometry)
+    assert exact.dtype == torch.float32 and rounded.dtype == torch.bfloat16 and box.dtype == torch.bfloat16
+    eps = torch.finfo(torch.bfloat16).eps
+    assert (rounded.float() - exact).abs().max() <= 8 * eps * exact.abs().max()
+    assert all(p.dtype == torch.float32 for p in model.parameters())
+    with pytest.raises(ValueError, match="crossfit.precision"):
+        cm.training_autocast("half")
 
 
 def test_object_crops_match_torchvision_roi_align() -> None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from detdiff.config import load_config
+from detdiff.config import ConfigError, load_config
 from detdiff.data.coco import CocoDataset
 from detdiff.recipe import (box_view_sides, choose_view_size, dimension_clusters, fit_recipe, format_recipe,
                             scaled_epochs)
@@ -69,6 +69,21 @@ def test_fit_recipe_resolves_auto_and_keeps_explicit_values() -> None:
     kept, recipe2 = fit_recipe(ds, explicit, measure=False)
     assert kept["data"]["image_size"] == 224 and kept["train"]["epochs"] == 5
     assert recipe2.reasons["train.epochs"].startswith("given")
+    assert resolved["crossfit"]["precision"] == "float32"            # auto without timed steps
+    assert recipe.reasons["crossfit.precision"].startswith("float32: no timed steps")
+
+
+def test_crop_precision_is_timed_and_bad_values_are_refused() -> None:
+    ds = _dataset(np.random.default_rng(6).uniform(15, 80, (200, 2)))
+    config = load_config(overrides={"recipe": {"budget_minutes": 1}})
+    resolved, recipe = fit_recipe(ds, config, measure=True)
+    chosen, reason = resolved["crossfit"]["precision"], recipe.reasons["crossfit.precision"]
+    assert chosen in ("float32", "bfloat16") and reason.startswith(chosen) and "x;" in reason
+    assert recipe.settings["crossfit.precision"] == chosen
+    kept, _ = fit_recipe(ds, load_config(overrides={"crossfit": {"precision": "bfloat16"}}), measure=False)
+    assert kept["crossfit"]["precision"] == "bfloat16"
+    with pytest.raises(ConfigError, match="crossfit.precision must be one of auto, float32, bfloat16"):
+        fit_recipe(ds, load_config(overrides={"crossfit": {"precision": "fp16"}}), measure=False)
 
 
 def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:

@@ -152,6 +152,7 @@ def _train_fold(inputs: _Inputs, rows: np.ndarray, num_classes: int, cfg: dict[s
     steps = fold_steps(len(rows), float(cfg["epochs"]), batch_size)
     scheduler = torch.optim.lr_scheduler.LambdaLR(optimizer, warmup_cosine(max(1, steps // 10), steps))
     allowed = np.array(FLIP_MODES[flips])
+    precision = str(cfg.get("precision", "auto"))
     model.train()
     passes = math.ceil(steps * batch_size / max(len(rows), 1))          # whole shuffles, cut at the last step
     order = np.concatenate([rng.permutation(rows) for _ in range(passes)])
@@ -162,8 +163,9 @@ def _train_fold(inputs: _Inputs, rows: np.ndarray, num_classes: int, cfg: dict[s
         target = torch.from_numpy(target_in_window(inputs.units[idx], windows))
         draw = (rng.random((len(idx), 3)) < 0.5) & allowed
         pixels, target = cm.flip_batch(pixels, target, draw)
-        logits, boxes = model(pixels, torch.from_numpy(inputs.geometry[idx]))
-        loss = cm.crop_loss(logits, boxes, torch.from_numpy(inputs.labels[idx]), target)
+        with cm.training_autocast(precision):
+            logits, boxes = model(pixels, torch.from_numpy(inputs.geometry[idx]))
+        loss = cm.crop_loss(logits.float(), boxes.float(), torch.from_numpy(inputs.labels[idx]), target)
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
         optimizer.step()

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from detdiff.report.run_folder import SUSPECT_KINDS, RunFolder, lint_code_counts, lint_totals
+from detdiff.report.run_folder import SUSPECT_KINDS, RunFolder, lean_clause, lint_code_counts, lint_totals
 from detdiff.report.wording import STREAM_PHRASES, descriptor_words, format_percent, fraction_words
 
 _COMPARISON = re.compile(r"^\s*(>=|<=|==|!=|>|<|≥|≤)")
@@ -173,8 +173,8 @@ def suspect_advice(run: RunFolder) -> list[Advice]:
             text = f"{verb} {_plural(total, adjective + ' box')}{clause}."
         precision = run.expected_precision(kind)
         if precision:
-            text = text[:-1] + (f" ({precision[1]} {precision[0]:.0%} of them expected to be real faults, measured on "
-                                f"this dataset).")
+            text = text[:-1] + (f" (about {precision[0]:.0%} of them expected to be real faults, measured on "
+                                f"this dataset{lean_clause(precision[1], '; this estimate ', '')}).")
         out.append(Advice("relabel", text, float(total), emphasis=str(total)))
     return out
 

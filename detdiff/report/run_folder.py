@@ -165,15 +165,17 @@ class RunFolder:
         return value if isinstance(value, dict) else {}
 
     def expected_precision(self, kind: str) -> tuple[float, str] | None:
-        """A list's self-estimated precision and its qualifier: ``"at most"`` where the estimate is known to read
-        high (loose boxes), ``"at least"`` where it reads low (missing boxes), ``"about"`` otherwise; None when the
-        run estimated none."""
+        """A list's self-estimated precision and the way it usually leans against the truth: ``"high"`` (loose
+        boxes), ``"low"`` (missing boxes) or ``""``; None when the run estimated none. Run folders written before
+        the lean replaced a one-sided bound keep their ``expected_precision_bound`` (upper / lower)."""
         check = self.list_check(kind)
         value = check.get("expected_precision")
         if not isinstance(value, (int, float)) or value != value:
             return None
-        bound = check.get("expected_precision_bound")
-        return float(value), {"upper": "at most", "lower": "at least"}.get(bound, "about")
+        lean = check.get("expected_precision_lean")
+        if lean is None:
+            lean = {"upper": "high", "lower": "low"}.get(check.get("expected_precision_bound"), "")
+        return float(value), lean if lean in ("high", "low") else ""
 
     def quality_warning(self) -> str:
         """One plain sentence when the detector is not trustworthy, else ``""``."""
@@ -203,6 +205,12 @@ def lint_code_counts(findings: dict[str, Any]) -> pd.DataFrame:
         table = pd.DataFrame(records, columns=["severity", "code"]).fillna("").astype(str)
         table = table.groupby(["severity", "code"]).size().reset_index(name="count")
     return table.sort_values(["count", "code"], ascending=[False, True], kind="stable").reset_index(drop=True)
+
+
+def lean_clause(lean: str, before: str, after: str) -> str:
+    """"usually reads high" / "usually reads low" between ``before`` and ``after`` for a list's expected precision
+    (:meth:`RunFolder.expected_precision`), ``""`` where the estimate has no usual lean."""
+    return f"{before}usually reads {lean}{after}" if lean in ("high", "low") else ""
 
 
 def lint_totals(findings: dict[str, Any]) -> dict[str, int]:

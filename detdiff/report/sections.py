@@ -16,7 +16,14 @@ from detdiff.report.advice import Advice, lift_sentence, significant_causes, sou
 from detdiff.report.cards import image_card, missing_place_cards, object_cards, stream_rows, suspect_cards
 from detdiff.report.elements import Markup, data_table, el, fmt, join, num_cell, plot_image
 from detdiff.report.page import Page
-from detdiff.report.run_folder import STREAMS, SUSPECT_KINDS, RunFolder, lint_code_counts, lint_totals
+from detdiff.report.run_folder import (
+    STREAMS,
+    SUSPECT_KINDS,
+    RunFolder,
+    lean_clause,
+    lint_code_counts,
+    lint_totals,
+)
 from detdiff.report.thumbnails import legend
 from detdiff.report.wording import STREAM_TITLES, descriptor_words, format_ap, format_percent
 
@@ -42,9 +49,9 @@ SELF_CHECK_NOTE = ("Before training, the audit made faults of its own: boxes lef
                    "that never trained on its image. How well each kind of planted fault ranks above the real "
                    "items is the audit's accuracy on this dataset (AUROC, 95% interval); the same scores estimate "
                    "each suspect's probability of being a real fault, and each list stops where that probability "
-                   "falls below the level shown. No planted fault is ever listed as a suspect. \u2264: the "
-                   "loose-box estimate reads high (the audit's loosened boxes are easier to spot than real subtle "
-                   "ones); \u2265: the missing-box estimate reads low.")
+                   "falls below the level shown. No planted fault is ever listed as a suspect. The "
+                   "loose-box estimate usually reads high (the audit's loosened boxes are easier to spot than real "
+                   "subtle ones), the missing-box estimate usually reads low; both have read the other way.")
 MISSING_PLACES_NOTE = ("Every image ranked by its strongest detection that matches no annotation, in the late "
                        "epochs or after training (the dashed box): where an unannotated object is most likely, "
                        "whether or not it made the list above. A ranking, not a list of faults: the self-check's "
@@ -265,13 +272,12 @@ def _missing_places(page: Page) -> list[Markup]:
 
 
 def _precision_cell(run: RunFolder, kind: str) -> Markup:
-    """A list's expected precision, marked "at most" / "at least" where the estimate is known to lean one way."""
+    """A list's expected precision, with the way the estimate usually leans where it has one."""
     precision = run.expected_precision(kind)
     if precision is None:
         return num_cell(None)
-    value, qualifier = precision
-    prefix = {"at most": "\u2264 ", "at least": "\u2265 "}.get(qualifier, "")
-    return num_cell(value, f"{prefix}{fmt(value)}")
+    value, lean = precision
+    return num_cell(value, fmt(value) + lean_clause(lean, " (", ")"))
 
 
 def _self_check_table(run: RunFolder) -> Markup | None:

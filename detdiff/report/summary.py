@@ -7,7 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from detdiff.report.advice import cause_subject, significant_causes, spearman_phrase
-from detdiff.report.run_folder import STREAMS, SUSPECT_KINDS, RunFolder
+from detdiff.report.run_folder import STREAMS, SUSPECT_KINDS, RunFolder, lean_clause
 from detdiff.report.wording import STREAM_TITLES, format_ap, format_percent, fraction_words
 
 _CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
@@ -65,8 +65,9 @@ def self_check_lines(run: RunFolder) -> list[str]:
             found += " per image"
         if check.get("calibrated"):
             precision = run.expected_precision(kind)
-            listed = f"list of {check.get('listed', 0)}" + (f", expected precision {precision[1]} {precision[0]:.2f}"
-                                                             if precision else "")
+            listed = f"list of {check.get('listed', 0)}"
+            if precision:
+                listed += f", expected precision about {precision[0]:.2f}" + lean_clause(precision[1], " (", ")")
             share = check.get("fault_share")
             if isinstance(share, (int, float)):
                 listed += f"; about {share:.1%} of the {'proposals' if kind == 'missing_box' else 'boxes'} faulty"

@@ -347,7 +347,7 @@ def test_list_precision_says_which_way_its_estimate_leans(tmp_path):
     """In most validity audits the loose-box list's self-estimated precision read above the truth and the
     missing-box one below, but not in all (README "What to expect"): the summary, the advice and the report give
     it as "about" with "usually reads high" / "usually reads low", no lean for wrong class. A run folder written
-    with the older one-sided bound reads the same. Scores: numpy normal samples, 5% faults 3 sd above the clean
+    with the older one-sided bound reads the same; an estimate of 1.00 cannot read low and shows no lean. Scores: numpy normal samples, 5% faults 3 sd above the clean
     items."""
     rundir = make_run_folder(tmp_path)
     rng = np.random.default_rng(0)
@@ -378,3 +378,7 @@ def test_list_precision_says_which_way_its_estimate_leans(tmp_path):
     (rundir / "self_check.json").write_text(json.dumps(checks))
     old = RunFolder.load(rundir)
     assert [old.expected_precision(k)[1] for k in self_check.FAULT_KINDS] == ["", "high", "low"]
+    checks["missing_box"]["expected_precision"] = 1.0
+    (rundir / "self_check.json").write_text(json.dumps(checks))
+    assert RunFolder.load(rundir).expected_precision("missing_box") == (1.0, "")
+    assert ">1.000<" in write_report(rundir, thumbnails=False).read_text()

@@ -167,7 +167,8 @@ class RunFolder:
     def expected_precision(self, kind: str) -> tuple[float, str] | None:
         """A list's self-estimated precision and the way it usually leans against the truth: ``"high"`` (loose
         boxes), ``"low"`` (missing boxes) or ``""``; None when the run estimated none. Run folders written before
-        the lean replaced a one-sided bound keep their ``expected_precision_bound`` (upper / lower)."""
+        the lean replaced a one-sided bound keep their ``expected_precision_bound`` (upper / lower). An estimate
+        at the end of its range (1.00 that "reads low") cannot lean that way and is given without a lean."""
         check = self.list_check(kind)
         value = check.get("expected_precision")
         if not isinstance(value, (int, float)) or value != value:
@@ -175,7 +176,9 @@ class RunFolder:
         lean = check.get("expected_precision_lean")
         if lean is None:
             lean = {"upper": "high", "lower": "low"}.get(check.get("expected_precision_bound"), "")
-        return float(value), lean if lean in ("high", "low") else ""
+        value = float(value)
+        at_end = (lean == "low" and value >= 0.995) or (lean == "high" and value < 0.005)
+        return value, lean if lean in ("high", "low") and not at_end else ""
 
     def quality_warning(self) -> str:
         """One plain sentence when the detector is not trustworthy, else ``""``."""

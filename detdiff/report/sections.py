@@ -277,7 +277,7 @@ def _precision_cell(run: RunFolder, kind: str) -> Markup:
     if precision is None:
         return num_cell(None)
     value, lean = precision
-    return num_cell(value, fmt(value) + lean_clause(lean, " (", ")"))
+    return num_cell(value, f"{value:.3f}" + lean_clause(lean, " (", ")"))
 
 
 def _self_check_table(run: RunFolder) -> Markup | None:

@@ -129,6 +129,22 @@ def test_page_sections_and_warning(report):
     assert len(sortable) >= 4
 
 
+def test_detector_quality_counts_the_boxes_behind_each_size(report):
+    """Each COCO size row of the quality table says how many annotated boxes it rests on (one large box gives an
+    AP of 0.1 or 1.0), recounted from objects.csv areas with pycocotools' own ``Params().areaRng`` edges
+    (cocodataset/cocoapi, cocoeval.py: small < 32^2 <= medium < 96^2 <= large)."""
+    from pycocotools.cocoeval import Params
+    rundir, page = report
+    _, parsed = _parse(page)
+    decoded = " ".join(" ".join(parsed.text).split())
+    area = pd.read_csv(rundir / "objects.csv")["area"].to_numpy()
+    ranges = dict(zip(Params(iouType="bbox").areaRngLbl, Params(iouType="bbox").areaRng))
+    assert f"all sizes {len(area):,} " in decoded
+    for size in ("small", "medium", "large"):
+        lo, hi = ranges[size]
+        assert f"{size} objects {int(((area >= lo) & (area < hi)).sum()):,} " in decoded
+
+
 def test_lists_are_bounded_by_top(tmp_path):
     rundir = make_run_folder(tmp_path, num_images=14)
     page = write_report(rundir, top=2, thumbnail_size=64)

@@ -108,15 +108,22 @@ def _findings_table(run: RunFolder) -> Markup:
     return join(parts)
 
 
-def _quality_table(metrics: dict[str, Any]) -> Markup:
-    rows = [["all sizes", num_cell(metrics.get("AP"), format_ap(metrics.get("AP"))),
+def _quality_table(metrics: dict[str, Any], objects: pd.DataFrame) -> Markup:
+    """COCO AP by object size, with the number of annotated boxes behind each row: an AP over a handful of
+    boxes (one large box in a dataset of small ones) reads as noise, not as a verdict on that size."""
+    counts = (objects["size_bin"].astype(str).value_counts() if "size_bin" in objects.columns
+              else pd.Series(dtype=np.int64))
+    rows = [["all sizes", num_cell(len(objects), fmt(len(objects))),
+             num_cell(metrics.get("AP"), format_ap(metrics.get("AP"))),
              num_cell(metrics.get("AP50"), format_ap(metrics.get("AP50"))),
              num_cell(metrics.get("AP75"), format_ap(metrics.get("AP75")))]]
     for size in ("small", "medium", "large"):
         ap, ap50 = metrics.get(f"AP_{size}"), metrics.get(f"AP50_{size}")
-        rows.append([f"{size} objects", num_cell(ap, format_ap(ap)), num_cell(ap50, format_ap(ap50)),
-                     num_cell(None, "")])
-    return data_table([("objects", "text"), ("AP", "num"), ("AP50", "num"), ("AP75", "num")], rows, sortable=False)
+        boxes = int(counts.get(size, 0))
+        rows.append([f"{size} objects", num_cell(boxes, fmt(boxes)), num_cell(ap, format_ap(ap)),
+                     num_cell(ap50, format_ap(ap50)), num_cell(None, "")])
+    return data_table([("objects", "text"), ("boxes", "num"), ("AP", "num"), ("AP50", "num"), ("AP75", "num")],
+                      rows, sortable=False)
 
 
 def _overview(page: Page) -> Markup:
@@ -142,7 +149,7 @@ def _overview(page: Page) -> Markup:
                     f"{format_ap(metrics.get('min_ap50'))}.")
     inline_warning = (el("p", {"class": "warn-line"}, "Not trustworthy: ", run.quality_warning())
                       if run.quality_warning() else None)
-    left = el("div", None, el("h3", None, "Detector quality"), inline_warning, _quality_table(metrics),
+    left = el("div", None, el("h3", None, "Detector quality"), inline_warning, _quality_table(metrics, run.objects),
               el("p", {"class": "note"}, quality_note))
     right = el("div", None, el("h3", None, "Annotation file check"), _findings_table(run))
     body = [el("h2", None, "Overview"), tiles, el("div", {"class": "columns"}, left, right)]

@@ -231,7 +231,7 @@ def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: i
             optimizer.step()
 
         crop_precision = str(config["crossfit"].get("precision", AUTO))
-        return _timed(detector_step), _timed(_crop_step(config["crossfit"], num_classes, crop_precision))
+        return _timed(detector_step)[0], _timed(_crop_step(config["crossfit"], num_classes, crop_precision))[0]
 
 
 def _crop_step(cfg: dict[str, Any], num_classes: int, precision: str):
@@ -259,33 +259,27 @@ def choose_crop_precision(config: dict[str, Any], num_classes: int) -> tuple[str
     """``crossfit.precision`` for ``auto``: bfloat16 when its timed crop-model step is at least
     :data:`BF16_MIN_SPEEDUP` times faster than float32's on this machine, float32 otherwise; with the reason."""
     with _timing_threads(config):
-        steps = {p: _crop_step(config["crossfit"], num_classes, p) for p in ("float32", "bfloat16")}
-        for step in steps.values():
-            step()                                          # warm-up
-        times: dict[str, list[float]] = {p: [] for p in steps}
-        for _ in range(2 * TIMED_STEPS):                    # interleaved: a busy spell slows both alike
-            for p, step in steps.items():
-                start = time.perf_counter()
-                step()
-                times[p].append(time.perf_counter() - start)
-    seconds = {p: min(t) for p, t in times.items()}
-    speedup = seconds["float32"] / max(seconds["bfloat16"], 1e-9)
+        f32, bf16 = _timed(_crop_step(config["crossfit"], num_classes, "float32"),
+                           _crop_step(config["crossfit"], num_classes, "bfloat16"), repeats=2 * TIMED_STEPS)
+    speedup = f32 / max(bf16, 1e-9)
     choice = "bfloat16" if speedup >= BF16_MIN_SPEEDUP else "float32"
-    return choice, (f"{choice}: a crop-model training step takes {seconds['float32']:.3f} s in float32 and "
-                    f"{seconds['bfloat16']:.3f} s in bfloat16 on this machine ({speedup:.2f}x; bfloat16 from "
-                    f"{BF16_MIN_SPEEDUP}x)")
+    return choice, (f"{choice}: a crop-model training step takes {f32:.3f} s in float32 and {bf16:.3f} s in "
+                    f"bfloat16 on this machine ({speedup:.2f}x; bfloat16 from {BF16_MIN_SPEEDUP}x)")
 
 
-def _timed(step) -> float:
-    """Seconds per call of ``step``: the fastest of :data:`TIMED_STEPS` timed calls after one warm-up (the
-    fastest is the one least slowed by whatever else the machine runs while the audit is planned)."""
-    step()
-    times = []
-    for _ in range(TIMED_STEPS):
-        start = time.perf_counter()
+def _timed(*steps, repeats: int = TIMED_STEPS) -> tuple[float, ...]:
+    """Seconds per call of each of ``steps``: the fastest of ``repeats`` timed calls after one warm-up (the
+    fastest is the one least slowed by whatever else the machine runs while the audit is planned). Several steps
+    are timed interleaved, so that a busy spell slows them alike."""
+    for step in steps:
         step()
-        times.append(time.perf_counter() - start)
-    return min(times)
+    times: list[list[float]] = [[] for _ in steps]
+    for _ in range(repeats):
+        for step, spent in zip(steps, times):
+            start = time.perf_counter()
+            step()
+            spent.append(time.perf_counter() - start)
+    return tuple(min(spent) for spent in times)
 
 
 def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: int | None = None,
@@ -329,7 +323,8 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
         if measure and dataset.num_classes and config["crossfit"]["enabled"]:
             precision, reason = choose_crop_precision(config, dataset.num_classes)
         else:
-            precision, reason = "float32", "float32: no timed steps (auto picks bfloat16 only where it is timed faster)"
+            precision = "float32"
+            reason = "float32: no timed steps (auto picks bfloat16 only where it is timed faster)"
         config["crossfit"]["precision"], recipe.reasons["crossfit.precision"] = precision, reason
     if measure and dataset.num_classes and boxes:
         _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop, auto_tiles)

@@ -363,8 +363,8 @@ def test_list_precision_says_which_way_its_estimate_leans(tmp_path):
     """In most validity audits the loose-box list's self-estimated precision read above the truth and the
     missing-box one below, but not in all (README "What to expect"): the summary, the advice and the report give
     it as "about" with "usually reads high" / "usually reads low", no lean for wrong class. A run folder written
-    with the older one-sided bound reads the same; an estimate of 1.00 cannot read low and shows no lean. Scores: numpy normal samples, 5% faults 3 sd above the clean
-    items."""
+    with the older one-sided bound reads the same; an estimate of 1.00 cannot read low and shows no lean.
+    Scores: numpy normal samples, 5% faults 3 sd above the clean items."""
     rundir = make_run_folder(tmp_path)
     rng = np.random.default_rng(0)
     cal = calibrate(np.concatenate([rng.normal(0, 1, 950), rng.normal(3, 1, 50)]), rng.normal(3, 1, 200))

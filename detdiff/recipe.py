@@ -24,11 +24,15 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
 * ``crossfit.precision``: ``auto`` becomes bfloat16 where a timed crop-model step runs at least
   :data:`BF16_MIN_SPEEDUP` times faster than in float32 (:func:`choose_crop_precision`). Same crops, 26 epochs,
   streetcam seed 1: float32 467 s, bfloat16 376 s; loose-box AUROC 0.927 / 0.924, wrong class 0.991 / 0.992.
-* **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image, at least
-  ``recipe.min_budget_minutes``; ``--budget`` on the command line) bounds the training time, estimated from a few
-  timed steps of the detector and of a crop model on this machine (:func:`measure_step_seconds`). The crop models
-  judge every box at full resolution whatever the view, so they are served first: they get the time their
-  epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their epochs shrink, down to
+* **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image plus
+  ``recipe.seconds_per_box`` per box, at least ``recipe.min_budget_minutes``: :func:`budget_seconds`; ``--budget``
+  on the command line) bounds the training time, estimated from timed steps on this machine: the detector's
+  (:func:`measure_step_seconds`) and a crop model's step and prediction as a fold does them
+  (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS` calls. Until the crop step was timed with
+  its resampling, on rows drawn from a large store, with the predictions counted and the median taken, the crop
+  estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up to 1.32x their budget. The
+  crop models judge every box at full resolution whatever the view, so they are served first: they get the time
+  their epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their epochs shrink, down to
   ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the view shrinks first
   (down to ``recipe.min_view``; a detector needs its steps more than its pixels), then the epochs (down to
   ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by 32 px, up to
@@ -67,7 +71,7 @@ AUTO = "auto"
 VIEW_MULTIPLE = 32
 ANCHORS_PER_LEVEL = 3
 KMEANS_ITERATIONS = 60
-TIMED_STEPS = 3
+TIMED_STEPS = 5
 #: ``crossfit.precision`` auto: bfloat16 from this speed-up of a timed crop-model step over float32.
 BF16_MIN_SPEEDUP = 1.15
 #: Least anchor side (square root of its area) in strides of its detection level.
@@ -203,12 +207,11 @@ def _timing_threads(config: dict[str, Any]):
         torch.set_num_threads(threads)
 
 
-def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int,
-                         boxes_per_image: int = 1) -> tuple[float, float]:
+def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int, boxes_per_image: int = 1) -> float:
     """Seconds per training step of the detector (batch ``train.batch_size`` at ``image_size``, each image with
-    ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) and of a crop model
-    (batch ``crossfit.batch_size``, at ``crossfit.precision``) on random data, timed over :data:`TIMED_STEPS` steps
-    after one warm-up, with the thread count training will use."""
+    ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) on random data, the
+    typical of :data:`TIMED_STEPS` steps after one warm-up (:func:`_timed`), with the thread count training will
+    use."""
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
 
@@ -230,37 +233,34 @@ def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: i
             streams.total.backward()
             optimizer.step()
 
-        crop_precision = str(config["crossfit"].get("precision", AUTO))
-        return _timed(detector_step)[0], _timed(_crop_step(config["crossfit"], num_classes, crop_precision))[0]
+        return _timed(detector_step)[0]
 
 
-def _crop_step(cfg: dict[str, Any], num_classes: int, precision: str):
-    """One crop-model training step on random pixels (batch ``crossfit.batch_size``) at ``precision``, as a
-    callable to time."""
-    from detdiff.crossfit.crop_model import CropModel, crop_loss, training_autocast
+def measure_crop_seconds(config: dict[str, Any], num_classes: int) -> tuple[float, float]:
+    """Seconds of a crop-model training step and of predicting one box, the work as a fold does it
+    (:func:`detdiff.crossfit.folds.crop_work`) on a store of random crops, at ``crossfit.precision``, the typical of
+    :data:`TIMED_STEPS` calls after one warm-up, with the thread count training will use."""
+    from detdiff.crossfit.folds import CropRows, crop_work
 
-    crop = CropModel(num_classes, width=int(cfg["width"]), input_size=int(cfg["input_size"]))
-    optimizer = torch.optim.AdamW(crop.parameters(), lr=1e-4)
-    n, s = int(cfg["batch_size"]), int(cfg["input_size"])
-    pixels = torch.rand(n, 3, s, s).contiguous(memory_format=torch.channels_last)
-    geometry, labels, boxes = torch.zeros(n, 4), torch.zeros(n, dtype=torch.int64), torch.rand(n, 4)
-
-    def step() -> None:
-        with training_autocast(precision):
-            logits, predicted = crop(pixels, geometry)
-        optimizer.zero_grad()
-        crop_loss(logits.float(), predicted.float(), labels, boxes).backward()
-        optimizer.step()
-
-    return step
+    cfg = config["crossfit"]
+    with _timing_threads(config):
+        work = crop_work(CropRows.random(num_classes, int(cfg["input_size"])), num_classes, cfg,
+                         str(config["train"]["flips"]))
+        step_s, predict_s = _timed(work.step, work.predict)
+    return step_s, predict_s / work.predicted
 
 
 def choose_crop_precision(config: dict[str, Any], num_classes: int) -> tuple[str, str]:
-    """``crossfit.precision`` for ``auto``: bfloat16 when its timed crop-model step is at least
-    :data:`BF16_MIN_SPEEDUP` times faster than float32's on this machine, float32 otherwise; with the reason."""
+    """``crossfit.precision`` for ``auto``: bfloat16 when its timed crop-model step (as a fold takes it,
+    :func:`detdiff.crossfit.folds.crop_work`) is at least :data:`BF16_MIN_SPEEDUP` times faster than float32's on
+    this machine, float32 otherwise; with the reason."""
+    from detdiff.crossfit.folds import CropRows, crop_work
+
+    cfg, flips = config["crossfit"], str(config["train"]["flips"])
     with _timing_threads(config):
-        f32, bf16 = _timed(_crop_step(config["crossfit"], num_classes, "float32"),
-                           _crop_step(config["crossfit"], num_classes, "bfloat16"), repeats=2 * TIMED_STEPS)
+        rows = CropRows.random(num_classes, int(cfg["input_size"]))
+        f32, bf16 = _timed(crop_work(rows, num_classes, cfg, flips, "float32").step,
+                           crop_work(rows, num_classes, cfg, flips, "bfloat16").step, repeats=2 * TIMED_STEPS)
     speedup = f32 / max(bf16, 1e-9)
     choice = "bfloat16" if speedup >= BF16_MIN_SPEEDUP else "float32"
     return choice, (f"{choice}: a crop-model training step takes {f32:.3f} s in float32 and {bf16:.3f} s in "
@@ -268,9 +268,10 @@ def choose_crop_precision(config: dict[str, Any], num_classes: int) -> tuple[str
 
 
 def _timed(*steps, repeats: int = TIMED_STEPS) -> tuple[float, ...]:
-    """Seconds per call of each of ``steps``: the fastest of ``repeats`` timed calls after one warm-up (the
-    fastest is the one least slowed by whatever else the machine runs while the audit is planned). Several steps
-    are timed interleaved, so that a busy spell slows them alike."""
+    """Seconds per call of each of ``steps``: the median of ``repeats`` timed calls after one warm-up. Several
+    steps are timed interleaved, so that a busy spell slows them alike. The median, not the fastest: the fastest
+    of three read 1.1-1.4x low against the steps the audit then took (validity audits, 2 cores), and a budget
+    fitted to it overran; the median still ignores a short spell that slows one or two calls."""
     for step in steps:
         step()
     times: list[list[float]] = [[] for _ in steps]
@@ -279,7 +280,7 @@ def _timed(*steps, repeats: int = TIMED_STEPS) -> tuple[float, ...]:
             start = time.perf_counter()
             step()
             spent.append(time.perf_counter() - start)
-    return tuple(min(spent) for spent in times)
+    return tuple(float(np.median(spent)) for spent in times)
 
 
 def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: int | None = None,
@@ -378,13 +379,15 @@ def choose_cache_codec(dataset: CocoDataset, config: dict[str, Any]) -> tuple[st
                                                                "; JPEG rows take a tenth to a twentieth of that"))
 
 
-def budget_seconds(cfg: dict[str, Any], images: int, tiled_share: float = 0.0) -> float:
+def budget_seconds(cfg: dict[str, Any], images: int, tiled_share: float = 0.0, boxes: int = 0) -> float:
     """``recipe.budget_minutes`` in seconds; ``auto``: ``seconds_per_image`` per image, times ``1 + tiled_share``
-    (the share of the images whose small boxes need tiles: their tiles are more work of the same kind), at least
-    ``min_budget_minutes``."""
+    (the share of the images whose small boxes need tiles: their tiles are more work of the same kind), plus
+    ``seconds_per_box`` per box (the crop models judge every box, and a budget counted in images alone starved
+    them on box-dense sets), at least ``min_budget_minutes``."""
     if _is_auto(cfg["budget_minutes"]):
         return max(60.0 * float(cfg["min_budget_minutes"]),
-                   float(cfg["seconds_per_image"]) * images * (1.0 + float(tiled_share)))
+                   float(cfg["seconds_per_image"]) * images * (1.0 + float(tiled_share))
+                   + float(cfg.get("seconds_per_box", 0.0)) * boxes)
     return 60.0 * float(cfg["budget_minutes"])
 
 
@@ -423,10 +426,11 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     a larger view (module docstring)."""
     cfg, train, crossfit, data = config["recipe"], config["train"], config["crossfit"], config["data"]
     tiled = tiled_image_share(dataset, _largest_view(dataset, cfg), cfg) if auto_tiles else 0.0
-    budget = budget_seconds(cfg, images, tiled)
-    if _is_auto(cfg["budget_minutes"]) and tiled > 0:
-        recipe.notes.append(f"budget {budget / 60:.1f} min: {cfg['seconds_per_image']} s per image, x{1 + tiled:.2f} "
-                            f"for the {tiled:.0%} of the images whose small boxes need tiles (--budget MINUTES)")
+    budget = budget_seconds(cfg, images, tiled, boxes)
+    if _is_auto(cfg["budget_minutes"]):
+        tiles = f", x{1 + tiled:.2f} for the {tiled:.0%} of the images whose small boxes need tiles" if tiled > 0 else ""
+        recipe.notes.append(f"budget {budget / 60:.1f} min: {cfg['seconds_per_image']} s per image{tiles}, + "
+                            f"{cfg.get('seconds_per_box', 0)} s per box (--budget MINUTES)")
     folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])
     speeds: dict[int, float] = {}                  # seconds per detector step, timed per view size
     per_image = math.ceil(boxes / max(images, 1))
@@ -436,8 +440,8 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     views = {"count": images + tile_count(dataset, int(data["image_size"]), float(data["tile_scale"] or 0), target)}
 
     def measure(size: int) -> None:
-        speeds[size], recipe.estimate["crop_step_s"] = measure_step_seconds(
-            _with_anchors(config, dataset), dataset.num_classes, size, boxes_per_image=per_image)
+        speeds[size] = measure_step_seconds(_with_anchors(config, dataset), dataset.num_classes, size,
+                                            boxes_per_image=per_image)
 
     def detector_seconds() -> float:
         size = int(data["image_size"])
@@ -447,14 +451,17 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     measure(int(data["image_size"]))
     crop_s = 0.0
     if crossfit["enabled"]:
-        per_epoch = folds * math.ceil(boxes * (folds - 1) / folds / crop_batch) * recipe.estimate["crop_step_s"]
+        step_s, predict_s = measure_crop_seconds(config, dataset.num_classes)
+        recipe.estimate.update({"crop_step_s": round(step_s, 4), "crop_predict_s_per_box": round(predict_s, 6)})
+        per_epoch = folds * math.ceil(boxes * (folds - 1) / folds / crop_batch) * step_s
+        predictions = 2 * boxes * predict_s              # every box and its box probe, once each
         crop_budget = budget * (1 - float(cfg["detector_share"]))
-        if auto_crop and float(crossfit["epochs"]) * per_epoch > crop_budget:
-            new = max(float(cfg["min_crop_epochs"]), round(crop_budget / per_epoch, 1))
+        if auto_crop and float(crossfit["epochs"]) * per_epoch + predictions > crop_budget:
+            new = max(float(cfg["min_crop_epochs"]), round((crop_budget - predictions) / per_epoch, 1))
             if new < float(crossfit["epochs"]):
                 recipe.traded.append(f"crossfit.epochs {crossfit['epochs']} -> {new} for the budget")
                 crossfit["epochs"] = new
-        crop_s = float(crossfit["epochs"]) * per_epoch
+        crop_s = float(crossfit["epochs"]) * per_epoch + predictions
     detector_budget = budget - crop_s
     while detector_seconds() > detector_budget:
         if auto_view and int(data["image_size"]) > int(cfg["min_view"]):

@@ -13,8 +13,8 @@ from torchvision.transforms.v2 import functional as TF
 from detdiff.boxes import xywh_to_xyxy
 from detdiff.crossfit import crop_model as cm
 from detdiff.crossfit.crops import CONTEXT, STORE, object_crops
-from detdiff.crossfit.folds import (assign_folds, cross_fit, from_reference_units, load_predictions, reference_boxes,
-                                   to_reference_units)
+from detdiff.crossfit.folds import (CropRows, assign_folds, crop_work, cross_fit, from_reference_units,
+                                   load_predictions, reference_boxes, to_reference_units)
 from detdiff.data.coco import CocoDataset
 from detdiff.data.probes import LOOSE_IOU, box_probes, loosen_boxes, plant_missing_probes, probe_count, training_copy
 
@@ -163,6 +163,23 @@ def test_cross_fit_predicts_out_of_fold_and_resumes(tmp_path, precision: str) ->
     assert saved is not None and np.allclose(saved.probs, result.probs)
     again = cross_fit(ds, ds, crops, usable, rows, boxes, config, tmp_path, progress=False)
     assert np.array_equal(again.probs, result.probs) and again.seconds == pytest.approx(result.seconds)
+
+
+def test_timed_crop_work_is_a_fold_step_and_a_prediction() -> None:
+    # The recipe and the plan time these callables; they must do a fold's work: a step moves the weights (a full
+    # batch even from a few rows), a prediction covers every row asked for and leaves the weights alone.
+    rows = CropRows.random(num_classes=4, input_size=32, rows=40)
+    assert rows.crops.shape == (40, STORE, STORE, 3) and rows.crops.dtype == np.uint8
+    cfg = {"width": 8, "lr": 0.003, "batch_size": 64, "precision": "float32"}
+    work = crop_work(rows, 4, cfg, "horizontal")
+    before = [p.detach().clone() for p in work.model.parameters()]
+    work.step()
+    assert all(not torch.equal(a, p) for a, p in zip(before, work.model.parameters()))
+    assert work.model.training and work.predicted >= 40
+    trained = [p.detach().clone() for p in work.model.parameters()]
+    work.predict()
+    assert not work.model.training
+    assert all(torch.equal(a, p) for a, p in zip(trained, work.model.parameters()))
 
 
 def test_bfloat16_training_pass_matches_float32_within_bfloat16_rounding() -> None:

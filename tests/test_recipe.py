@@ -7,8 +7,8 @@ import pytest
 
 from detdiff.config import ConfigError, load_config
 from detdiff.data.coco import CocoDataset
-from detdiff.recipe import (box_view_sides, choose_view_size, dimension_clusters, fit_recipe, format_recipe,
-                            scaled_epochs)
+from detdiff.recipe import (box_view_sides, budget_seconds, choose_view_size, dimension_clusters, fit_recipe,
+                            format_recipe, scaled_epochs)
 
 
 def _dataset(boxes_wh: np.ndarray, size: tuple[int, int] = (640, 480), per_image: int = 10) -> CocoDataset:
@@ -84,6 +84,28 @@ def test_crop_precision_is_timed_and_bad_values_are_refused() -> None:
     assert kept["crossfit"]["precision"] == "bfloat16"
     with pytest.raises(ConfigError, match="crossfit.precision must be one of auto, float32, bfloat16"):
         fit_recipe(ds, load_config(overrides={"crossfit": {"precision": "fp16"}}), measure=False)
+
+
+def test_auto_budget_counts_images_their_tiles_and_boxes() -> None:
+    cfg = load_config()["recipe"]
+    per_image, per_box = float(cfg["seconds_per_image"]), float(cfg["seconds_per_box"])
+    # 800 images, half of them tiled, 10,000 boxes: 800 x 1.5 image-units plus 10,000 boxes
+    assert budget_seconds(cfg, 800, 0.5, 10_000) == pytest.approx(per_image * 1200 + per_box * 10_000)
+    assert budget_seconds(cfg, 1, 0.0, 1) == 60.0 * float(cfg["min_budget_minutes"])          # the floor
+    assert budget_seconds({**cfg, "budget_minutes": 7}, 800, 0.5, 10_000) == 420.0                # explicit wins
+
+
+def test_crop_estimate_covers_the_folds_steps_and_predictions() -> None:
+    # Boxes 4x those of another set: the crop models' estimate grows with both their training steps (epochs x
+    # boxes) and their predictions (every box and its box probe), each at the timed seconds the recipe saves.
+    wh = np.random.default_rng(5).uniform(15, 80, (600, 2))
+    config = load_config(overrides={"recipe": {"budget_minutes": 600}, "crossfit": {"epochs": 2}})
+    _, recipe = fit_recipe(_dataset(wh), config, measure=True)
+    est = recipe.estimate
+    assert est["crop_step_s"] > 0 and est["crop_predict_s_per_box"] > 0
+    steps = 3 * int(np.ceil(600 * 2 / 3 / 128))                        # three folds, one epoch each
+    assert est["crop_models_s"] == pytest.approx(2 * steps * est["crop_step_s"]
+                                                 + 2 * 600 * est["crop_predict_s_per_box"], rel=1e-3, abs=0.2)
 
 
 def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:

@@ -51,7 +51,8 @@ SELF_CHECK_NOTE = ("Before training, the audit made faults of its own: boxes lef
                    "each suspect's probability of being a real fault, and each list stops where that probability "
                    "falls below the level shown. No planted fault is ever listed as a suspect. The "
                    "loose-box estimate usually reads high (the audit's loosened boxes are easier to spot than real "
-                   "subtle ones), the missing-box estimate usually reads low; both have read the other way.")
+                   "subtle ones) and has read low; the missing-box estimate has read high and low by up to a "
+                   "quarter.")
 MISSING_PLACES_NOTE = ("Every image ranked by its strongest detection that matches no annotation, in the late "
                        "epochs or after training (the dashed box): where an unannotated object is most likely, "
                        "whether or not it made the list above. A ranking, not a list of faults: the self-check's "

@@ -3,18 +3,19 @@
 A spread sample of the dataset's real files (:data:`SAMPLE_IMAGES`, chosen across the range of
 :func:`detdiff.data.cache_shards.decode_work`) is built into a throw-away image cache by the same
 :func:`detdiff.data.image_cache.build_image_cache` the audit runs (decode, letterbox, pixel descriptors, object
-crops, reduced JPEG decoding as configured; one OpenCV thread, as in a decode worker), after one untimed image
-that loads the codecs. That sample cache then feeds real steps of the audit's models, each timed as the median
-of :data:`TIMED_STEPS` after one warm-up step: a detector training step as the training loop takes it (batch
-from the cache with its flips, loss streams, AdamW step with gradient clipping, the loss-log writes), the
-detector's eval-mode forward with detection decoding (the final pass), a crop-model step as a fold takes it
-(:func:`detdiff.crossfit.folds.crop_work`: rows drawn at random, windows resampled from the stored crops, flips,
-step) and a crop-model prediction (every test window, with the mirror where flips allow). The median, as the
+crops, reduced JPEG decoding as configured; one OpenCV thread, as in a decode worker), after one untimed image that
+loads the codecs. That sample cache then feeds real steps of the audit's models, each timed as the median of
+:data:`detdiff.recipe.TIMED_STEPS` calls after one warm-up call: a detector training step as the training loop
+takes it (batch from the cache with its flips, loss streams, AdamW step with gradient clipping, the loss-log
+writes), the detector's eval-mode forward with detection decoding (the final pass), a crop-model step as a fold
+takes it (:func:`detdiff.crossfit.folds.crop_work`: rows drawn at random, windows resampled from the stored crops,
+flips, step) and a crop-model prediction (every test window, with the mirror where flips allow). The median, as the
 recipe times its steps: the fastest of three, used before, under-projected the crop models by 1.10-1.34x on the
-validity audits (aerial: 0.045 s timed, about 0.064 s per step in the audit); the median still ignores a short
-busy spell that slows one or two of the calls (on a machine another job keeps busy for a while, a step took
-anything from 1x to 10x its quiet time). The projection is therefore for this machine as it typically runs,
-not through a long spell of other work. Nothing is written in the run folder; the sample lives in a temporary folder removed at the end.
+validity audits (aerial: 0.045 s timed, about 0.064 s per step in the audit); the median still ignores a short busy
+spell that slows one or two of the calls (on a machine another job keeps busy for a while, a step took anything
+from 1x to 10x its quiet time). The projection is therefore for this machine as it typically runs, not through a
+long spell of other work. Nothing is written in the run folder; the sample lives in a temporary folder removed at
+the end.
 """
 
 from __future__ import annotations
@@ -33,11 +34,10 @@ from torch import nn
 
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache, build_image_cache
+from detdiff.recipe import time_calls
 
 #: Images decoded in the warm-up (fewer when the dataset has fewer).
 SAMPLE_IMAGES = 12
-#: Timed calls of each step after its warm-up call; the median counts.
-TIMED_STEPS = 5
 
 
 @dataclass
@@ -75,16 +75,13 @@ def sample_rows(work: np.ndarray, count: int = SAMPLE_IMAGES) -> np.ndarray:
 
 
 def _typical_seconds(step: Callable[[], None], sync: Callable[[], None]) -> float:
-    """Seconds of the median of :data:`TIMED_STEPS` calls of ``step`` after one untimed call."""
-    step()
-    sync()
-    times = []
-    for _ in range(TIMED_STEPS):
-        start = time.perf_counter()
+    """Seconds of ``step`` (then ``sync``), timed as the recipe times its steps (:func:`detdiff.recipe.time_calls`:
+    the median of :data:`detdiff.recipe.TIMED_STEPS` calls after one untimed call)."""
+    def synced() -> None:
         step()
         sync()
-        times.append(time.perf_counter() - start)
-    return float(np.median(times))
+
+    return time_calls(synced)[0]
 
 
 def _time_decode(dataset: CocoDataset, config: dict[str, Any], rows: np.ndarray, options: dict[str, Any],

@@ -210,8 +210,8 @@ def _timing_threads(config: dict[str, Any]):
 def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int, boxes_per_image: int = 1) -> float:
     """Seconds per training step of the detector (batch ``train.batch_size`` at ``image_size``, each image with
     ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) on random data, the
-    typical of :data:`TIMED_STEPS` steps after one warm-up (:func:`_timed`), with the thread count training will
-    use."""
+    typical of :data:`TIMED_STEPS` steps after one warm-up (:func:`time_calls`), with the thread count training
+    will use."""
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
 
@@ -233,7 +233,7 @@ def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: i
             streams.total.backward()
             optimizer.step()
 
-        return _timed(detector_step)[0]
+        return time_calls(detector_step)[0]
 
 
 def measure_crop_seconds(config: dict[str, Any], num_classes: int) -> tuple[float, float]:
@@ -246,7 +246,7 @@ def measure_crop_seconds(config: dict[str, Any], num_classes: int) -> tuple[floa
     with _timing_threads(config):
         work = crop_work(CropRows.random(num_classes, int(cfg["input_size"])), num_classes, cfg,
                          str(config["train"]["flips"]))
-        step_s, predict_s = _timed(work.step, work.predict)
+        step_s, predict_s = time_calls(work.step, work.predict)
     return step_s, predict_s / work.predicted
 
 
@@ -259,7 +259,7 @@ def choose_crop_precision(config: dict[str, Any], num_classes: int) -> tuple[str
     cfg, flips = config["crossfit"], str(config["train"]["flips"])
     with _timing_threads(config):
         rows = CropRows.random(num_classes, int(cfg["input_size"]))
-        f32, bf16 = _timed(crop_work(rows, num_classes, cfg, flips, "float32").step,
+        f32, bf16 = time_calls(crop_work(rows, num_classes, cfg, flips, "float32").step,
                            crop_work(rows, num_classes, cfg, flips, "bfloat16").step, repeats=2 * TIMED_STEPS)
     speedup = f32 / max(bf16, 1e-9)
     choice = "bfloat16" if speedup >= BF16_MIN_SPEEDUP else "float32"
@@ -267,7 +267,7 @@ def choose_crop_precision(config: dict[str, Any], num_classes: int) -> tuple[str
                     f"bfloat16 on this machine ({speedup:.2f}x; bfloat16 from {BF16_MIN_SPEEDUP}x)")
 
 
-def _timed(*steps, repeats: int = TIMED_STEPS) -> tuple[float, ...]:
+def time_calls(*steps, repeats: int = TIMED_STEPS) -> tuple[float, ...]:
     """Seconds per call of each of ``steps``: the median of ``repeats`` timed calls after one warm-up. Several
     steps are timed interleaved, so that a busy spell slows them alike. The median, not the fastest: the fastest
     of three read 1.1-1.4x low against the steps the audit then took (validity audits, 2 cores), and a budget
@@ -428,7 +428,8 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     tiled = tiled_image_share(dataset, _largest_view(dataset, cfg), cfg) if auto_tiles else 0.0
     budget = budget_seconds(cfg, images, tiled, boxes)
     if _is_auto(cfg["budget_minutes"]):
-        tiles = f", x{1 + tiled:.2f} for the {tiled:.0%} of the images whose small boxes need tiles" if tiled > 0 else ""
+        tiles = (f", x{1 + tiled:.2f} for the {tiled:.0%} of the images whose small boxes need tiles" if tiled > 0
+                 else "")
         recipe.notes.append(f"budget {budget / 60:.1f} min: {cfg['seconds_per_image']} s per image{tiles}, + "
                             f"{cfg.get('seconds_per_box', 0)} s per box (--budget MINUTES)")
     folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])

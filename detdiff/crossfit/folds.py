@@ -221,10 +221,9 @@ def crop_work(rows: CropRows, num_classes: int, cfg: dict[str, Any], flips: str,
     """A fold model's work as callables to time, each done as :func:`cross_fit` does it: a training step on a
     batch of ``crossfit.batch_size`` rows drawn at random from ``rows`` (:func:`_train_step`, at ``precision``,
     default ``crossfit.precision``), and the prediction of :data:`TIMED_PREDICT_ROWS` rows with every test window
-    and mirror (:func:`_predict`). Timing a step on one batch of
-    random pixels instead read 1.3-2.0x low against the folds' measured time on seven of eight validity audits:
-    it left out the resampling from the stored crops (about a quarter of a step), the predictions and the slower
-    gathers of rows drawn from a large store."""
+    and mirror (:func:`_predict`). Timing a step on one batch of random pixels instead read 1.3-2.0x low against
+    the folds' measured time on seven of eight validity audits: it left out the resampling from the stored crops
+    (about a quarter of a step), the predictions and the slower gathers of rows drawn from a large store."""
     rng = np.random.default_rng(0)
     model = cm.CropModel(num_classes, width=int(cfg["width"]), input_size=rows.input_size)
     optimizer = torch.optim.AdamW(model.parameters(), lr=float(cfg["lr"]), weight_decay=1e-4)

@@ -371,3 +371,30 @@ def test_progress_bar_shows_one_rate() -> None:
     shown = str(hook.bar)
     hook.close()
     assert shown.count("/s") == 1 and "pos 2.000" in shown, shown
+
+
+def test_a_tile_detection_on_a_probe_box_is_unmatched_one_on_a_target_is_part_of_it(tmp_path) -> None:
+    """A tile's detection lying inside a training target is a part of that box and not logged; inside a crowd box
+    (a missing-box probe in the training copy, detdiff.data.probes.training_copy) it is unmatched, as an
+    unannotated object is. Part = intersection over the detection's area >= PART_OF_BOX; the intersection's
+    reference is torchvision.ops.box_iou (inter = iou * union)."""
+    from detdiff.train.distributed import DistInfo
+    from detdiff.train.hooks import PART_OF_BOX, LossLogHook, _parts_of_boxes
+
+    coco = {"images": [{"id": 1, "file_name": "a.jpg", "width": 200, "height": 100}],
+            "categories": [{"id": 1, "name": "thing"}],
+            "annotations": [{"id": 1, "image_id": 1, "category_id": 1, "bbox": [10, 10, 40, 40], "area": 1600,
+                             "iscrowd": 0},
+                            {"id": 2, "image_id": 1, "category_id": 1, "bbox": [120, 10, 40, 40], "area": 1600,
+                             "iscrowd": 1}]}
+    dataset = build_dataset(coco)
+    info = DistInfo(rank=0, world_size=1, local_rank=0, is_main=True, device=torch.device("cpu"))
+    hook = LossLogHook(tmp_path / "log", dataset, info, unmatched_per_image=3)
+    detections = np.array([[20.0, 20.0, 20.0, 20.0], [130.0, 20.0, 20.0, 20.0]])      # xywh, inside box 1 / box 2
+    parts = _parts_of_boxes(hook.ann_xyxy, hook.image_offsets, np.zeros(2, dtype=np.int64), detections)
+    assert parts.tolist() == [True, False]
+    det, ann = box_convert(torch.from_numpy(detections), "xywh", "xyxy"), torch.from_numpy(dataset.boxes_xyxy())
+    iou = box_iou(det, ann)
+    area_d, area_a = (det[:, 2:] - det[:, :2]).prod(1), (ann[:, 2:] - ann[:, :2]).prod(1)
+    inter = iou * (area_d[:, None] + area_a[None, :]) / (1 + iou)
+    assert (inter.diag() / area_d >= PART_OF_BOX).all()          # both lie inside their box; only the target holds parts

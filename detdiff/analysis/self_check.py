@@ -59,7 +59,9 @@ RUNNER_UP_PRIOR = 0.5
 #: than real subtle ones, so the estimate read 0.01-0.29 above the true precision on six audits (0.27-0.29 on
 #: aerial views) and 0.07-0.08 below on both streetcam ones. Missing box: no lean; it read 0.18-0.27 below on
 #: warehouse and 0.05-0.22 above on aerial (it read low on five of six with the recipe before, when aerial's
-#: detector trained longer). Wrong class has no side either (0.12 below to 0.05 above) and reads as an estimate.
+#: detector trained longer); since the training log keeps unmatched detections from a score of 0.05, 0.01-0.15
+#: above on four audits (warehouse, streetcam, aerial, digits; digits highest). Wrong class has no side either
+#: (0.12 below to 0.05 above) and reads as an estimate.
 PRECISION_LEAN = {"loose_box": "high"}
 
 

@@ -17,7 +17,8 @@ crowd the top of every stream; the score then ranks within the gate.
   JAIR 2021), in [-1, 1]. On the demo it put more planted faults in the top k than the mean logit
   margin (0.70 vs 0.64, issue notes): a small box with two low logits has a large logit gap but a small
   probability gap, and that is the box the detector cannot judge.
-- missing_box: confident detections that match no annotation (``LossLog.unmatched``), clustered across
+- missing_box: detections that match no annotation (``LossLog.unmatched``: each epoch's best
+  ``log.unmatched_per_image`` per image scoring at least ``log.unmatched_min_score``), clustered across
   the late epochs per image by IoU >= 0.5 and the same class; clusters present in >= half the late epochs
   are proposed as a box = per-coordinate median. score = presence share x mean detection score. With the
   cross-fitted evidence, the trained detector's final pass is a second sighting (:func:`add_final_sightings`).

@@ -34,7 +34,7 @@ from torch import nn
 
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache, build_image_cache
-from detdiff.recipe import time_calls
+from detdiff.recipe import crop_seconds, time_calls
 
 #: Images decoded in the warm-up (fewer when the dataset has fewer).
 SAMPLE_IMAGES = 12
@@ -173,7 +173,7 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
     """Time a crop-model training step and a prediction per row on the sample's stored crops, as a fold does them
     (:func:`detdiff.crossfit.folds.crop_work`)."""
     from detdiff.crossfit import crop_model as cm
-    from detdiff.crossfit.folds import CropRows, crop_work, reference_boxes, to_reference_units
+    from detdiff.crossfit.folds import CropRows, reference_boxes, to_reference_units
 
     cfg = config["crossfit"]
     rows = np.flatnonzero(~sub.iscrowd & cache.usable[sub.ann_image_index])
@@ -184,9 +184,8 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
     geometry = cm.geometry_raw(boxes, sub.widths[image].astype(np.float64), sub.heights[image].astype(np.float64))
     crop_rows = CropRows(cache.crops[rows], to_reference_units(boxes, reference_boxes(boxes)),
                          geometry.astype(np.float32), sub.labels[rows], int(cfg["input_size"]))
-    work = crop_work(crop_rows, sub.num_classes, cfg, str(config["train"]["flips"]))
-    warm.crop_step_s = _typical_seconds(work.step, lambda: None)
-    warm.predict_s_per_row = _typical_seconds(work.predict, lambda: None) / work.predicted
+    warm.crop_step_s, warm.predict_s_per_row = crop_seconds(crop_rows, sub.num_classes, cfg,
+                                                            str(config["train"]["flips"]))
 
 
 def run_warmup(dataset: CocoDataset, config: dict[str, Any], work: np.ndarray, options: dict[str, Any]) -> Warmup:

@@ -58,7 +58,7 @@ import math
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -66,6 +66,9 @@ import torch
 from detdiff.config import ConfigError
 from detdiff.data.coco import CocoDataset
 from detdiff.data.views import ViewTable, logged_view_sides, plan_tiles, small_boxes, whole_view_scale
+
+if TYPE_CHECKING:            # for annotations; the timing functions import folds at call time, as before
+    from detdiff.crossfit.folds import CropRows
 
 AUTO = "auto"
 VIEW_MULTIPLE = 32
@@ -240,13 +243,22 @@ def measure_crop_seconds(config: dict[str, Any], num_classes: int) -> tuple[floa
     """Seconds of a crop-model training step and of predicting one box, the work as a fold does it
     (:func:`detdiff.crossfit.folds.crop_work`) on a store of random crops, at ``crossfit.precision``, the typical of
     :data:`TIMED_STEPS` calls after one warm-up, with the thread count training will use."""
-    from detdiff.crossfit.folds import CropRows, crop_work
+    from detdiff.crossfit.folds import CropRows
 
     cfg = config["crossfit"]
     with _timing_threads(config):
-        work = crop_work(CropRows.random(num_classes, int(cfg["input_size"])), num_classes, cfg,
-                         str(config["train"]["flips"]))
-        step_s, predict_s = time_calls(work.step, work.predict)
+        return crop_seconds(CropRows.random(num_classes, int(cfg["input_size"])), num_classes, cfg,
+                            str(config["train"]["flips"]))
+
+
+def crop_seconds(rows: CropRows, num_classes: int, cfg: dict[str, Any], flips: str) -> tuple[float, float]:
+    """Seconds of a fold model's training step and of its prediction per row on ``rows``
+    (:func:`detdiff.crossfit.folds.crop_work` at ``crossfit.precision``), timed interleaved by :func:`time_calls`;
+    the recipe times random crops, the plan's warm-up the sample's own."""
+    from detdiff.crossfit.folds import crop_work
+
+    work = crop_work(rows, num_classes, cfg, flips)
+    step_s, predict_s = time_calls(work.step, work.predict)
     return step_s, predict_s / work.predicted
 
 

@@ -11,6 +11,10 @@ from collections.abc import Iterator
 
 import numpy as np
 
+#: A detection that covers at least this share of its own area with an annotated box of its image is a view of
+#: that box (the part a tile border cut off, a limb, a wheel), not an unannotated object.
+PART_OF_BOX = 0.5
+
 #: Pairs generated per chunk: bounds memory to a few hundred MB whatever the box count per group.
 PAIR_CHUNK = 2_000_000
 
@@ -107,3 +111,38 @@ def pair_iou(boxes_xyxy: np.ndarray, rows_i: np.ndarray, rows_j: np.ndarray) -> 
     area_b = (b[:, 2] - b[:, 0]) * (b[:, 3] - b[:, 1])
     union = area_a + area_b - inter
     return np.divide(inter, union, out=np.zeros_like(inter), where=union > 0)
+
+
+def best_overlaps(ann_xyxy: np.ndarray, image_offsets: np.ndarray, image_index: np.ndarray,
+                  boxes_xywh: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per box (``boxes_xywh [n, 4]`` original px of images ``image_index [n]``), its largest IoU with an annotated
+    box of its image and the largest share of its own area inside one (float64 ``[n]`` each); ``ann_xyxy [A, 4]``
+    are the dataset's boxes, image ``i``'s at ``image_offsets[i]:image_offsets[i + 1]`` (a zero box overlaps
+    nothing)."""
+    image_index = np.asarray(image_index, np.int64)
+    count = image_offsets[image_index + 1] - image_offsets[image_index]
+    det = np.repeat(np.concatenate([boxes_xywh[:, :2], boxes_xywh[:, :2] + boxes_xywh[:, 2:]], axis=1), count, axis=0)
+    ann = ann_xyxy[concatenated_ranges(image_offsets[image_index], count)]
+    inter = np.prod(np.clip(np.minimum(det[:, 2:], ann[:, 2:]) - np.maximum(det[:, :2], ann[:, :2]), 0, None), axis=1)
+    area_d = np.prod(det[:, 2:] - det[:, :2], axis=1)
+    area_a = np.prod(ann[:, 2:] - ann[:, :2], axis=1)
+    union = area_d + area_a - inter
+    owner = np.repeat(np.arange(len(image_index)), count)
+    iou, share = np.zeros(len(image_index)), np.zeros(len(image_index))
+    np.maximum.at(iou, owner, np.divide(inter, union, out=np.zeros_like(inter), where=union > 0))
+    np.maximum.at(share, owner, inter / np.maximum(area_d, 1e-9))
+    return iou, share
+
+
+def parts_of_boxes(ann_xyxy: np.ndarray, image_offsets: np.ndarray, image_index: np.ndarray,
+                   boxes_xywh: np.ndarray, min_share: float = PART_OF_BOX) -> np.ndarray:
+    """bool ``[n]``: detections lying mostly inside an annotated box of their image (intersection over the
+    detection's area >= ``min_share``; arguments as :func:`best_overlaps`)."""
+    return best_overlaps(ann_xyxy, image_offsets, image_index, boxes_xywh)[1] >= min_share
+
+
+def overlaps_objects(ann_xyxy: np.ndarray, image_offsets: np.ndarray, image_index: np.ndarray,
+                     boxes_xywh: np.ndarray, min_iou: float) -> np.ndarray:
+    """bool ``[n]``: boxes with IoU >= ``min_iou`` with an annotated box of their image (arguments as
+    :func:`best_overlaps`)."""
+    return best_overlaps(ann_xyxy, image_offsets, image_index, boxes_xywh)[0] >= min_iou

@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from detdiff import __version__
 from detdiff.atomic import write_json_atomic
@@ -117,10 +118,13 @@ def report(rundir: str | Path, *, top: int | None = None, thumbnails: bool | Non
 def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dict, rundir: Path, *,
                   progress: bool = True):
     """Cross-fit the crop models (``RUNDIR/crossfit/``) with the run's thread count; every scorable box carries
-    a virtual box probe."""
+    a virtual box probe, and every place where the detector saw an unannotated object is judged too (its crop cut
+    from the image again: :mod:`detdiff.crossfit.places`)."""
     import torch
 
+    from detdiff.analysis.suspects import unannotated_places
     from detdiff.crossfit.folds import cross_fit
+    from detdiff.crossfit.places import place_crops
     from detdiff.data.probes import box_probes
     from detdiff.train.resources import thread_count
 
@@ -129,11 +133,17 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
     seed = int(config["train"]["seed"])
     scorable = np.flatnonzero(~dataset.iscrowd & cache.usable[dataset.ann_image_index])
     probe_rows, probe_boxes = box_probes(dataset, scorable, seed)
+    missing_rows = np.flatnonzero(trained.iscrowd & ~dataset.iscrowd)
+    places = pd.concat(unannotated_places(dataset, rundir, missing_rows, config))
+    threads = thread_count(config["train"])
+    places = place_crops(dataset, places["image_index"].to_numpy(np.int64),
+                         places[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64),
+                         max_pixels=int(config["data"]["max_pixels"]), threads=threads, progress=progress)
     saved = torch.get_num_threads()
-    torch.set_num_threads(thread_count(config["train"]))
+    torch.set_num_threads(threads)
     try:
         return cross_fit(dataset, trained, cache.crops, cache.usable, probe_rows, probe_boxes, config, rundir,
-                         progress=progress)
+                         places=places, progress=progress)
     finally:
         torch.set_num_threads(saved)
 

@@ -272,6 +272,7 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
              work: np.ndarray, boxes: int, detections: float) -> None:
     """Seconds per stage from the warm-up's measurements and the audit's step counts."""
     from detdiff.crossfit.folds import assign_folds, fold_steps
+    from detdiff.data.cache_shards import decode_work
     from detdiff.data.image_cache import build_image_cache
     from detdiff.train.resources import available_cores
 
@@ -299,10 +300,17 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
         trainable = ~dataset.iscrowd
         fold_rows = [int((trainable & (fold != k)).sum()) for k in range(folds)]
         crop_steps = sum(fold_steps(n, float(cfg["epochs"]), int(cfg["batch_size"])) for n in fold_rows)
+        # the places judged for an unannotated object: their images decoded again (reduced by the smallest box, as
+        # detdiff.crossfit.places does) and up to log.unmatched_per_image places per image predicted
+        places = int(config["log"]["unmatched_per_image"]) * images
+        place_decode = warm.decode_s_per_work * float(
+            decode_work(dataset, 0, bool(config["data"]["reduced_decode"])).sum()) / workers
         if warm.crop_step_s is not None:
-            plan.seconds["crop models"] = crop_steps * warm.crop_step_s + 2 * boxes * warm.predict_s_per_row
-            plan.seconds_basis["crop models"] = (f"{crop_steps} steps x {warm.crop_step_s:.3f} s + {2 * boxes} "
-                                                 f"predictions (boxes and box probes)")
+            plan.seconds["crop models"] = (crop_steps * warm.crop_step_s + (2 * boxes + places) * warm.predict_s_per_row
+                                           + place_decode)
+            plan.seconds_basis["crop models"] = (f"{crop_steps} steps x {warm.crop_step_s:.3f} s + {2 * boxes + places} "
+                                                 f"predictions (boxes, box probes, places) + {place_decode:.0f} s "
+                                                 f"decoding the places' images")
         else:
             plan.seconds["crop models"] = float(recipe.estimate.get("crop_models_s", 0.0))
             plan.seconds_basis["crop models"] = "the recipe's estimate (no usable box in the sample)"

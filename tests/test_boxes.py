@@ -50,3 +50,31 @@ def test_cross_group_pairs_are_every_same_group_pair_once() -> None:
     assert len(found) == len(set(found)) and set(found) == expected
     assert len(chunks) > 1
     assert list(cross_group_pairs(group_a, np.zeros(0, np.int64))) == []
+
+
+def test_best_overlaps_match_torchvision_iou_and_intersection() -> None:
+    # IoU: torchvision.ops.box_iou; the share inside = intersection / own area, intersection = iou * union (the
+    # identity behind box_iou). Zero boxes (rows that hold nothing) overlap nothing.
+    from detdiff.boxes import PART_OF_BOX, best_overlaps, overlaps_objects, parts_of_boxes
+    rng = np.random.default_rng(3)
+    counts = np.array([4, 0, 6])
+    offsets = np.r_[0, np.cumsum(counts)]
+    ann = xywh_to_xyxy(np.c_[rng.uniform(0, 80, (counts.sum(), 2)), rng.uniform(5, 40, (counts.sum(), 2))])
+    ann[2] = 0.0
+    image = np.array([0, 0, 1, 2, 2, 2])
+    det = np.c_[rng.uniform(0, 80, (6, 2)), rng.uniform(5, 40, (6, 2))]
+    iou, share = best_overlaps(ann, offsets, image, det)
+    for k, i in enumerate(image):
+        rows = np.arange(offsets[i], offsets[i + 1])
+        rows = rows[(ann[rows, 2:] > ann[rows, :2]).all(axis=1)]
+        if not len(rows):
+            assert iou[k] == 0 and share[k] == 0
+            continue
+        d, a = torch.from_numpy(xywh_to_xyxy(det[k:k + 1])), torch.from_numpy(ann[rows])
+        ref = box_iou(d, a)[0]
+        areas = (d[0, 2:] - d[0, :2]).prod() + (a[:, 2:] - a[:, :2]).prod(1)
+        inter = ref * areas / (1 + ref)                   # iou = inter / (areas - inter)
+        assert iou[k] == pytest.approx(float(ref.max()), abs=1e-9)
+        assert share[k] == pytest.approx(float((inter / (d[0, 2:] - d[0, :2]).prod()).max()), abs=1e-9)
+    assert np.array_equal(parts_of_boxes(ann, offsets, image, det), share >= PART_OF_BOX)
+    assert np.array_equal(overlaps_objects(ann, offsets, image, det, 0.1), iou >= 0.1)

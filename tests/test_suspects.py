@@ -8,6 +8,7 @@ import json
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 import torch
 from pycocotools.coco import COCO
@@ -264,3 +265,21 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
     path.write_text(json.dumps([{"image_id": 999, "category_id": CAT, "bbox": [0, 0, 5, 5], "score": 0.5}]))
     with pytest.raises(ValueError, match=r"detections\.json: record 0 names image_id 999"):
         read_detections(path, ds)
+    # the cross-fit's objectness joins each place by image and box, whatever the order, and makes every place
+    # listable, scored (detector score + objectness) / 2; a place the fold models did not judge reads 0
+    from detdiff.analysis.self_check import judged_places, place_objectness
+    from detdiff.crossfit.folds import CrossFitResult
+    everything = pd.concat([seen_twice, final_only], ignore_index=True)
+    boxes = everything[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64)
+    judged = np.arange(len(everything))[::-1][:-1]                      # reversed, the first place left out
+    object_p = np.linspace(0.1, 0.9, len(everything))
+    empty = np.zeros(0)
+    prediction = CrossFitResult(empty, empty, empty, empty, empty, empty, 0.0,
+                                everything["image_index"].to_numpy()[judged], boxes[judged], object_p[judged])
+    expected = np.r_[np.nan, object_p[1:]]
+    np.testing.assert_array_equal(place_objectness(everything, prediction), expected)
+    listable, image_only = judged_places(ds, seen_twice, final_only, prediction)
+    assert image_only is None and len(listable) == len(everything)
+    np.testing.assert_allclose(listable["score"], (everything["score"] + np.nan_to_num(expected)) / 2)
+    assert listable["evidence"].str.contains("sees an object there with probability").all()
+    assert "detection of the trained detector matching no annotation" in listable["evidence"].iat[-1]

@@ -379,7 +379,8 @@ def test_a_tile_detection_on_a_probe_box_is_unmatched_one_on_a_target_is_part_of
     unannotated object is. Part = intersection over the detection's area >= PART_OF_BOX; the intersection's
     reference is torchvision.ops.box_iou (inter = iou * union)."""
     from detdiff.train.distributed import DistInfo
-    from detdiff.train.hooks import PART_OF_BOX, LossLogHook, _parts_of_boxes
+    from detdiff.boxes import PART_OF_BOX, parts_of_boxes
+    from detdiff.train.hooks import LossLogHook
 
     coco = {"images": [{"id": 1, "file_name": "a.jpg", "width": 200, "height": 100}],
             "categories": [{"id": 1, "name": "thing"}],
@@ -391,7 +392,7 @@ def test_a_tile_detection_on_a_probe_box_is_unmatched_one_on_a_target_is_part_of
     info = DistInfo(rank=0, world_size=1, local_rank=0, is_main=True, device=torch.device("cpu"))
     hook = LossLogHook(tmp_path / "log", dataset, info, unmatched_per_image=3)
     detections = np.array([[20.0, 20.0, 20.0, 20.0], [130.0, 20.0, 20.0, 20.0]])      # xywh, inside box 1 / box 2
-    parts = _parts_of_boxes(hook.ann_xyxy, hook.image_offsets, np.zeros(2, dtype=np.int64), detections)
+    parts = parts_of_boxes(hook.ann_xyxy, hook.image_offsets, np.zeros(2, dtype=np.int64), detections)
     assert parts.tolist() == [True, False]
     det, ann = box_convert(torch.from_numpy(detections), "xywh", "xyxy"), torch.from_numpy(dataset.boxes_xyxy())
     iou = box_iou(det, ann)

@@ -24,10 +24,10 @@ Scores:
   0.905), digits 1 0.744 against 0.913 (0.791 against 0.834).
 * loose box: ``1 - IoU`` of the annotated box with the box the crop model draws around it; a box probe is a
   loosened copy of a box (IoU 0.45-0.75 with it), scored with the box drawn around the loosened copy.
-* missing box: the detector's proposals (persistent unmatched detections, :mod:`detdiff.analysis.suspects`),
-  scored by the mean of presence share x mean detection score and the trained detector's score for the place
-  (:func:`detdiff.analysis.suspects.add_final_sightings`; final detections at no proposal count in the image
-  evidence only, scored as seen once); a proposal is a probe hit when it covers a planted
+* missing box: the places where the detector saw an unannotated object (persistent unmatched detections and the
+  final pass's, :func:`detdiff.analysis.suspects.unannotated_places`), scored by the mean of the detector's score
+  (presence share x mean detection score and the final pass's score, averaged) and the objectness the cross-fit's
+  fold models give the place out of sample (:func:`judged_places`); a proposal is a probe hit when it covers a planted
   missing-box probe (IoU >= 0.5), and probe hits never reach an output. Proposals are candidates already, and
   where most of them are real missing boxes they score like the probes: their AUROC against the probes is
   then near 0.5 whether the evidence works or not. So whether it works is judged on images (each scored by
@@ -206,6 +206,50 @@ def _spread(values: np.ndarray, rows: np.ndarray, size: int) -> np.ndarray:
     out = np.full(size, np.nan)
     out[rows] = values
     return out
+
+
+def place_objectness(places: pd.DataFrame, prediction: CrossFitResult) -> np.ndarray:
+    """``[N]``: the out-of-sample objectness of each place (``image_index``, ``suggested_x/y/w/h``) that the
+    cross-fit judged (:attr:`CrossFitResult.place_object_p`), NaN for a place it did not."""
+    keys = ["image_index", "x", "y", "w", "h"]
+    judged = pd.DataFrame(np.column_stack([prediction.place_image, np.round(prediction.place_box, 3)]), columns=keys)
+    judged["object_p"] = prediction.place_object_p
+    asked = pd.DataFrame(np.column_stack([places["image_index"].to_numpy(np.float64), np.round(
+        places[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64), 3)]), columns=keys)
+    found = asked.merge(judged.drop_duplicates(keys), on=keys, how="left")
+    return found["object_p"].to_numpy(np.float64)
+
+
+def judged_places(dataset: CocoDataset, seen_twice: pd.DataFrame, final_only: pd.DataFrame,
+                  prediction: CrossFitResult) -> tuple[pd.DataFrame, pd.DataFrame | None]:
+    """The places for an unannotated object (:func:`detdiff.analysis.suspects.unannotated_places`) scored with the
+    cross-fit's out-of-sample objectness: ``(listable, image_only)`` for :func:`missing_box_evidence`.
+
+    Where the cross-fit judged the places, every place is listable and scored ``(detector score + objectness) / 2``
+    (the detector score: the mean of the two sightings, 0 where one is absent); the objectness of a place the fold
+    model did not judge reads 0. Measured on digits seed 2 (tuned on it; the planted missing boxes against the other
+    places, 2,424 places): AUROC 0.895 by the detector score, 0.981 by the objectness, 0.980 by the mean; top-k
+    precision of the places (k = planted, at most 0.535 as the places hold 184 of the 344 planted boxes) 0.395,
+    0.526 and 0.517; image AUROC 0.756, 0.823 and 0.826 (the objectness alone ties near 1 at the top). Runs
+    without objectness keep the final pass's places for the image columns only.
+    """
+    object_p = place_objectness(pd.concat([seen_twice, final_only]), prediction)
+    if not np.isfinite(object_p).any():
+        return seen_twice, final_only
+    places = pd.concat([seen_twice, final_only], ignore_index=True)
+    names = dict(zip(dataset.category_ids.tolist(), dataset.category_names))
+    once = np.arange(len(places)) >= len(seen_twice)
+    texts = places["evidence"].tolist()
+    for row in np.flatnonzero(once):
+        x, y, w, h = places.loc[row, ["suggested_x", "suggested_y", "suggested_w", "suggested_h"]]
+        texts[row] = (f"a '{names[int(places.at[row, 'suggested_category_id'])]}' detection of the trained detector "
+                      f"matching no annotation (score {2 * places.at[row, 'score']:.2f}) at [{x:.0f}, {y:.0f}, "
+                      f"{w:.0f}, {h:.0f}]")
+    object_p = np.nan_to_num(object_p, nan=0.0)
+    places["evidence"] = [f"{text}; a crop model trained on other images sees an object there with probability "
+                          f"{p:.2f}" for text, p in zip(texts, object_p)]
+    places["score"] = (places["score"].to_numpy(np.float64) + object_p) / 2
+    return places, None
 
 
 def missing_box_evidence(dataset: CocoDataset, proposals: pd.DataFrame, missing_rows: np.ndarray,

@@ -153,12 +153,8 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
         evidence, wrong_cal, loose_cal = self_check.object_evidence(dataset, prediction, scorable,
                                                                     int(config["train"]["seed"]))
         objects = pd.concat([objects, evidence], axis=1)
-        covering = np.setdiff1d(np.arange(dataset.num_annotations), missing_rows)
-        final = suspects.final_unmatched(dataset, suspects.read_detections(rundir / "detections.json", dataset),
-                                         covering, max_iou=float(config["log"]["unmatched_max_iou"]),
-                                         per_image=int(config["log"]["unmatched_per_image"]))
-        proposals, final_only = suspects.add_final_sightings(
-            dataset, suspects.missing_box_suspects(dataset, log, late.epochs), final)
+        proposals, final_only = self_check.judged_places(
+            dataset, *suspects.unannotated_places(dataset, rundir, missing_rows, config), prediction)
         kept, image_evidence, proposal_cal, image_cal = self_check.missing_box_evidence(
             dataset, proposals, missing_rows, usable, image_only=final_only)
         images = pd.concat([images, image_evidence], axis=1)

@@ -17,9 +17,12 @@ the training forward pass in bfloat16 (convolutions and linear layers; batch nor
 float32: ``torch.autocast``) where a timed step is clearly faster than in float32, as on CPUs with AVX512-BF16.
 Predictions are always float32.
 
-Outputs: ``C`` class logits and the box as ``(x1, y1, x2, y2)`` in window units (0..1). Losses: cross-entropy
-with label smoothing 0.05 (common practice against noisy labels) and smooth L1 on the box (Girshick, Fast
-R-CNN, eq. 3).
+Outputs: ``C`` class logits, the box as ``(x1, y1, x2, y2)`` in window units (0..1) and an objectness logit
+(is an object centred in the window at all). Losses: cross-entropy with label smoothing 0.05 (common practice
+against noisy labels) and smooth L1 on the box (Girshick, Fast R-CNN, eq. 3) on the annotated windows; binary
+cross-entropy of the objectness on those (1) and on background windows beside them (0,
+:func:`background_windows`). The objectness judges the detector's unannotated detections out of sample (a
+missing box is an object the fold model never saw labelled as background).
 
 Tried and not kept: the small-loss trick against noisy labels (Han et al., Co-teaching, NeurIPS 2018): each
 batch's 10% largest class losses and 10% largest box losses left out of the gradient, ramped in over the
@@ -50,6 +53,12 @@ GEOMETRY_FEATURES = 4
 LABEL_SMOOTHING = 0.05
 BOX_LOSS_WEIGHT = 4.0
 BOX_BETA = 0.05
+#: Background windows drawn per annotated window in a training batch.
+BACKGROUND_SHARE = 0.25
+#: A background window's box has IoU below this with its own annotated box.
+BACKGROUND_MAX_IOU = 0.2
+#: Candidate background boxes drawn per window (the first that fits is kept).
+BACKGROUND_TRIES = 8
 #: ``crossfit.precision`` values; ``auto`` is resolved by the recipe, and reads as float32 where it was not.
 PRECISIONS = ("auto", "float32", "bfloat16")
 
@@ -60,7 +69,8 @@ def conv_bn_relu(cin: int, cout: int, stride: int) -> nn.Sequential:
 
 
 class CropModel(nn.Module):
-    """``forward(pixels [B,3,S,S] in 0..1, geometry [B,4]) -> (logits [B,C], box [B,4])`` (see module docstring)."""
+    """``forward(pixels [B,3,S,S] in 0..1, geometry [B,4]) -> (logits [B,C], box [B,4], objectness [B])`` (see
+    module docstring)."""
 
     def __init__(self, num_classes: int, *, width: int = 24, input_size: int = 32) -> None:
         super().__init__()
@@ -74,12 +84,13 @@ class CropModel(nn.Module):
         self.neck = nn.Sequential(nn.Linear(6 * w * cells + GEOMETRY_FEATURES, 192), nn.ReLU(inplace=True))
         self.classify = nn.Linear(192, num_classes)
         self.locate = nn.Linear(192, 4)
+        self.objectness = nn.Linear(192, 1)
         self.to(memory_format=torch.channels_last)
 
-    def forward(self, pixels: torch.Tensor, geometry: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    def forward(self, pixels: torch.Tensor, geometry: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
         features = self.body((pixels - 0.5) * 4.0).flatten(1)
         features = self.neck(torch.cat([features, geometry], dim=1))
-        return self.classify(features), self.locate(features)
+        return self.classify(features), self.locate(features), self.objectness(features)[:, 0]
 
 
 def training_autocast(precision: str) -> torch.autocast:
@@ -100,6 +111,25 @@ def sample_windows(rng: np.random.Generator, n: int) -> np.ndarray:
     centre = 0.5 + rng.uniform(-SHIFT, SHIFT, (n, 2))
     side = WINDOW * np.exp(rng.uniform(-SCALE, SCALE, (n, 2)))
     return np.concatenate([centre - side / 2, centre + side / 2], axis=1).astype(np.float32)
+
+
+def background_boxes(rng: np.random.Generator, n: int, extent: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    """``[n, 4]`` xyxy boxes in box units beside the annotated box ``[0, 0, 1, 1]`` (IoU below
+    :data:`BACKGROUND_MAX_IOU`), of the object's own size (each side scaled by ``exp(U(-SCALE, 0))``), whose
+    training-size windows (:data:`WINDOW` times the box) lie inside the stored crop's ``extent``: so a background
+    window has the resolution and the grey padding of an annotated one, and no edge of the crop tells them apart.
+    Returns the boxes and ``ok bool [n]`` (False where no candidate fitted)."""
+    low, high = extent
+    side = np.exp(rng.uniform(-SCALE, 0.0, (n, BACKGROUND_TRIES, 2)))
+    half = side * WINDOW / 2
+    centre = low + half + rng.random((n, BACKGROUND_TRIES, 2)) * np.maximum(high - low - 2 * half, 0.0)
+    x1y1, x2y2 = centre - side / 2, centre + side / 2
+    inter = np.prod(np.clip(np.minimum(x2y2, 1.0) - np.maximum(x1y1, 0.0), 0.0, None), axis=-1)
+    iou = inter / (np.prod(side, axis=-1) + 1.0 - inter)
+    fits = iou < BACKGROUND_MAX_IOU
+    first = fits.argmax(axis=1)
+    pick = np.arange(n)
+    return np.concatenate([x1y1[pick, first], x2y2[pick, first]], axis=1).astype(np.float32), fits.any(axis=1)
 
 
 def box_in_window(windows: np.ndarray) -> np.ndarray:
@@ -139,11 +169,15 @@ def flip_batch(pixels: torch.Tensor, boxes: torch.Tensor, flips: np.ndarray) -> 
     return pixels.contiguous(memory_format=torch.channels_last), boxes
 
 
-def crop_loss(logits: torch.Tensor, boxes: torch.Tensor, labels: torch.Tensor, target_boxes: torch.Tensor) -> torch.Tensor:
-    """Mean cross-entropy (label smoothing) + weighted smooth L1 of the box, over the batch."""
-    cls = F.cross_entropy(logits, labels, label_smoothing=LABEL_SMOOTHING)
-    box = F.smooth_l1_loss(boxes, target_boxes, beta=BOX_BETA)
-    return cls + BOX_LOSS_WEIGHT * box
+def crop_loss(logits: torch.Tensor, boxes: torch.Tensor, labels: torch.Tensor, target_boxes: torch.Tensor,
+              objectness: torch.Tensor | None = None, is_object: torch.Tensor | None = None) -> torch.Tensor:
+    """Mean cross-entropy (label smoothing) + weighted smooth L1 of the box over the annotated windows (the first
+    ``len(labels)`` rows), + the objectness's binary cross-entropy against ``is_object`` over every row."""
+    n = len(labels)
+    cls = F.cross_entropy(logits[:n], labels, label_smoothing=LABEL_SMOOTHING)
+    box = F.smooth_l1_loss(boxes[:n], target_boxes, beta=BOX_BETA)
+    obj = F.binary_cross_entropy_with_logits(objectness, is_object) if objectness is not None else 0.0
+    return cls + BOX_LOSS_WEIGHT * box + obj
 
 
 def geometry_raw(boxes_xywh: np.ndarray, widths: np.ndarray, heights: np.ndarray) -> np.ndarray:

@@ -5,8 +5,10 @@ label learns to agree with it (measured: longer detector training raised AP50 an
 AUROC). As in confident learning's out-of-sample predicted probabilities (Northcutt, Jiang & Chuang, JAIR
 2021), the images are split into ``crossfit.folds`` folds; fold ``k``'s model trains on the others and
 predicts the class probabilities and the box of every annotation of fold ``k``, and the box around every
-virtual box probe there (a loosened copy of a box, :mod:`detdiff.data.probes`). Each fold's predictions are saved as soon as they exist
-(``RUNDIR/crossfit/fold_K.npz``, renamed into place), so an interrupted audit redoes only unfinished folds.
+virtual box probe there (a loosened copy of a box, :mod:`detdiff.data.probes`), and the objectness of every place
+in fold ``k`` where the detector saw an unannotated object (:class:`Places`). Each fold's predictions are saved as
+soon as they exist (``RUNDIR/crossfit/fold_K.npz``, renamed into place), so an interrupted audit redoes only
+unfinished folds.
 
 Reproducibility: fold ``k`` draws its batches, windows and flips from ``PCG64([seed, 104729, k])`` and seeds
 torch with ``seed + k`` before building its model; same seed and thread count, same predictions.
@@ -18,7 +20,7 @@ import hashlib
 import math
 import os
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
@@ -26,6 +28,7 @@ import numpy as np
 import torch
 from tqdm import tqdm
 
+from detdiff.boxes import overlaps_objects
 from detdiff.crossfit import crop_model as cm
 from detdiff.crossfit.crops import MIN_SIDE, STORE, crop_extent
 from detdiff.data.coco import CocoDataset
@@ -55,7 +58,9 @@ class CrossFitResult:
     ``probs [A, C]`` class probabilities; ``box [A, 4]`` the predicted box, xywh original px; ``fold [A]``
     the fold of the annotation's image; ``probe_rows [P]`` the boxes carrying a box probe, ``probe_given
     [P, 4]`` their loosened boxes and ``probe_box [P, 4]`` the box predicted around each (xywh px);
-    ``seconds`` the training time of the fold models.
+    ``seconds`` the training time of the fold models; ``place_image [N]`` / ``place_box [N, 4]`` (xywh px) the
+    places judged for an unannotated object (:mod:`detdiff.crossfit.places`) and ``place_object_p [N]`` the
+    objectness each got from the fold model that did not train on its image (NaN where none).
     """
 
     probs: np.ndarray
@@ -65,6 +70,9 @@ class CrossFitResult:
     probe_given: np.ndarray
     probe_box: np.ndarray
     seconds: float
+    place_image: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    place_box: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
+    place_object_p: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
 
 def assign_folds(num_images: int, folds: int, seed: int) -> np.ndarray:
@@ -110,11 +118,14 @@ def target_in_window(units: np.ndarray, windows: np.ndarray) -> np.ndarray:
     return ((units - np.concatenate([windows[:, :2]] * 2, axis=1)) / side).astype(np.float32)
 
 
-def fold_key(trained: CocoDataset, probe_rows: np.ndarray, probe_boxes: np.ndarray, config: dict[str, Any]) -> str:
-    """What a saved fold depends on: annotations trained on, box probes, the crossfit, flips and seed settings and the
-    test scales."""
+def fold_key(trained: CocoDataset, probe_rows: np.ndarray, probe_boxes: np.ndarray, config: dict[str, Any],
+             places: Places | None = None) -> str:
+    """What a saved fold depends on: annotations trained on, box probes, places judged, the crossfit, flips and seed
+    settings and the test scales."""
+    places = Places.none() if places is None else places
     digest = hashlib.sha256()
-    for arr in (trained.ann_ids, trained.labels, trained.boxes, trained.iscrowd, probe_rows, probe_boxes):
+    for arr in (trained.ann_ids, trained.labels, trained.boxes, trained.iscrowd, probe_rows, probe_boxes,
+                places.image, places.box):
         digest.update(np.ascontiguousarray(arr).tobytes())
     settings = (sorted(config["crossfit"].items()), config["train"]["flips"], config["train"]["seed"], TEST_SCALES)
     digest.update(repr(settings).encode())
@@ -130,6 +141,13 @@ class CropRows:
         self.crops, self.units, self.geometry, self.input_size = crops, units, geometry, int(input_size)
         self.labels = np.asarray(labels, dtype=np.int64)
         self.extent = crop_extent()
+
+    def background(self, rows: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Background boxes beside ``rows``' boxes (:func:`crop_model.background_boxes`, reference units) with
+        their standardised geometry; returns ``(rows, boxes, geometry)`` of those that fitted. Here the geometry
+        is the row's own (a random store knows no images); :class:`_Inputs` also refuses boxes on other objects."""
+        boxes, ok = cm.background_boxes(rng, len(rows), self.extent)
+        return rows[ok], boxes[ok], self.geometry[rows[ok]]
 
     @classmethod
     def random(cls, num_classes: int, input_size: int, rows: int = TIMING_STORE_ROWS, seed: int = 0) -> CropRows:
@@ -165,6 +183,20 @@ class _Inputs(CropRows):
         self.probe_units = to_reference_units(probe_boxes, self.reference[self.probe_rows])
         self.probe_geometry = cm.standardise(cm.geometry_raw(probe_boxes, widths[self.probe_rows],
                                                              heights[self.probe_rows]), self.mean, self.std)
+        self.widths, self.heights, self.image = widths, heights, image
+        # a background box must not lie on another object: every box of the dataset but the planted missing-box
+        # probes (objects nobody labelled, as a real missing box is) holds one
+        holders = ~(trained.iscrowd & ~original.iscrowd)
+        self.object_xyxy = np.where(holders[:, None], original.boxes_xyxy(), 0.0)
+        self.image_offsets = original.image_offsets
+
+    def background(self, rows: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        boxes, ok = cm.background_boxes(rng, len(rows), self.extent)
+        px = from_reference_units(boxes.astype(np.float64), self.reference[rows])
+        ok &= ~overlaps_objects(self.object_xyxy, self.image_offsets, self.image[rows], px, cm.BACKGROUND_MAX_IOU)
+        rows, px = rows[ok], px[ok]
+        geometry = cm.standardise(cm.geometry_raw(px, self.widths[rows], self.heights[rows]), self.mean, self.std)
+        return rows, boxes[ok], geometry
 
 
 def _train_fold(inputs: _Inputs, rows: np.ndarray, num_classes: int, cfg: dict[str, Any], flips: str,
@@ -192,15 +224,23 @@ def _train_fold(inputs: _Inputs, rows: np.ndarray, num_classes: int, cfg: dict[s
 def _train_step(model: cm.CropModel, optimizer: torch.optim.Optimizer, inputs: CropRows, idx: np.ndarray,
                 rng: np.random.Generator, allowed: np.ndarray, precision: str) -> None:
     """One optimizer step on rows ``idx``: windows jittered around their boxes and resampled from the stored crops,
-    flips drawn where ``allowed``, the forward pass at ``precision``."""
+    then background windows beside a random :data:`crop_model.BACKGROUND_SHARE` of them (centred, as a judged
+    place is), flips drawn where ``allowed``, the forward pass at ``precision``."""
     windows = _jitter_around(inputs.units[idx], rng)
-    pixels = inputs.batch(idx, windows)
-    target = torch.from_numpy(target_in_window(inputs.units[idx], windows))
-    draw = (rng.random((len(idx), 3)) < 0.5) & allowed
+    side = rng.random(len(idx)) < cm.BACKGROUND_SHARE
+    bg_rows, bg_boxes, bg_geometry = inputs.background(idx[side], rng)
+    bg_windows = windows_around(bg_boxes)
+    pixels = inputs.batch(np.concatenate([idx, bg_rows]), np.concatenate([windows, bg_windows]))
+    target = torch.from_numpy(np.concatenate([target_in_window(inputs.units[idx], windows),
+                                              target_in_window(bg_boxes, bg_windows)]))
+    draw = (rng.random((len(idx) + len(bg_rows), 3)) < 0.5) & allowed
     pixels, target = cm.flip_batch(pixels, target, draw)
+    geometry = torch.from_numpy(np.concatenate([inputs.geometry[idx], bg_geometry]))
     with cm.training_autocast(precision):
-        logits, boxes = model(pixels, torch.from_numpy(inputs.geometry[idx]))
-    loss = cm.crop_loss(logits.float(), boxes.float(), torch.from_numpy(inputs.labels[idx]), target)
+        logits, boxes, objectness = model(pixels, geometry)
+    is_object = torch.from_numpy(np.r_[np.ones(len(idx)), np.zeros(len(bg_rows))].astype(np.float32))
+    loss = cm.crop_loss(logits.float(), boxes.float(), torch.from_numpy(inputs.labels[idx]), target[:len(idx)],
+                        objectness.float(), is_object)
     optimizer.zero_grad(set_to_none=True)
     loss.backward()
     optimizer.step()
@@ -258,32 +298,33 @@ def _jitter_around(units: np.ndarray, rng: np.random.Generator) -> np.ndarray:
 
 @torch.no_grad()
 def _predict(model: cm.CropModel, inputs: CropRows, rows: np.ndarray, units: np.ndarray, geometry: np.ndarray,
-             flips: str) -> tuple[np.ndarray, np.ndarray]:
-    """Class probabilities ``[n, C]`` and boxes ``[n, 4]`` (reference units) for ``rows`` judged as ``units``;
-    averaged over the windows of :data:`TEST_SCALES` and their horizontal mirrors where ``train.flips`` allows
-    mirrors."""
-    probs, boxes = [], []
+             flips: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Class probabilities ``[n, C]``, boxes ``[n, 4]`` (reference units) and objectness probabilities ``[n]`` for
+    ``rows`` judged as ``units``; averaged over the windows of :data:`TEST_SCALES` and their horizontal mirrors
+    where ``train.flips`` allows mirrors."""
+    probs, boxes, objects = [], [], []
     mirror = FLIP_MODES[flips][0]
     for start in range(0, len(rows), PREDICT_BATCH):
         idx = slice(start, start + PREDICT_BATCH)
         geo = torch.from_numpy(geometry[idx])
-        p_sum, box_sum = 0.0, 0.0
+        p_sum, box_sum, obj_sum = 0.0, 0.0, 0.0
         for scale in TEST_SCALES:
             windows = windows_around(units[idx], scale)
             pixels = inputs.batch(rows[idx], windows)
-            logits, box = model(pixels, geo)
-            p = logits.softmax(1)
+            logits, box, obj = model(pixels, geo)
+            p, o = logits.softmax(1), obj.sigmoid()
             if mirror:
-                logits_m, box_m = model(pixels.flip(-1).contiguous(memory_format=torch.channels_last), geo)
-                p = (p + logits_m.softmax(1)) / 2
+                logits_m, box_m, obj_m = model(pixels.flip(-1).contiguous(memory_format=torch.channels_last), geo)
+                p, o = (p + logits_m.softmax(1)) / 2, (o + obj_m.sigmoid()) / 2
                 box = (box + torch.stack([1 - box_m[:, 2], box_m[:, 1], 1 - box_m[:, 0], box_m[:, 3]], 1)) / 2
-            p_sum = p_sum + p.numpy()
+            p_sum, obj_sum = p_sum + p.numpy(), obj_sum + o.numpy()
             box_sum = box_sum + cm.window_to_box_units(box.numpy().astype(np.float64), windows.astype(np.float64))
         probs.append(p_sum / len(TEST_SCALES))
         boxes.append(box_sum / len(TEST_SCALES))
+        objects.append(obj_sum / len(TEST_SCALES))
     if not len(rows):
-        return np.zeros((0, model.num_classes), np.float32), np.zeros((0, 4))
-    return np.concatenate(probs), np.concatenate(boxes)
+        return np.zeros((0, model.num_classes), np.float32), np.zeros((0, 4)), np.zeros(0, np.float32)
+    return np.concatenate(probs), np.concatenate(boxes), np.concatenate(objects)
 
 
 def _save_fold(path: Path, **arrays: Any) -> None:
@@ -293,15 +334,40 @@ def _save_fold(path: Path, **arrays: Any) -> None:
     os.replace(tmp, path)
 
 
+@dataclass
+class Places:
+    """Places to judge for an unannotated object: image rows ``[N]``, boxes ``[N, 4]`` xywh original px and their
+    crops ``uint8 [N, STORE, STORE, 3]``, cut as an annotation's are (:func:`detdiff.crossfit.crops.object_crops`)."""
+
+    image: np.ndarray
+    box: np.ndarray
+    crops: np.ndarray
+
+    @classmethod
+    def none(cls) -> Places:
+        return cls(np.zeros(0, np.int64), np.zeros((0, 4)), np.zeros((0, STORE, STORE, 3), np.uint8))
+
+
+def _place_rows(places: Places, original: CocoDataset, inputs: _Inputs) -> CropRows:
+    """The places as crop rows: each judged around its own box (reference units ``[0, 0, 1, 1]``)."""
+    reference = reference_boxes(places.box)
+    image = places.image
+    raw = cm.geometry_raw(places.box, original.widths[image].astype(np.float64),
+                          original.heights[image].astype(np.float64))
+    return CropRows(places.crops, to_reference_units(places.box, reference), cm.standardise(raw, inputs.mean, inputs.std),
+                    np.zeros(len(image), np.int64), inputs.input_size)
+
+
 def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, usable_images: np.ndarray,
               probe_rows: np.ndarray, probe_boxes: np.ndarray, config: dict[str, Any], rundir: str | Path, *,
-              progress: bool = True) -> CrossFitResult:
+              places: Places | None = None, progress: bool = True) -> CrossFitResult:
     """Train the fold models and collect their out-of-sample predictions (see module docstring).
 
     ``original``: the dataset as given (what the outputs judge); ``trained``: its training copy (planted
     probes left out, :func:`detdiff.data.probes.training_copy`); ``crops``: the stored crops of the boxes
     (``[A, STORE, STORE, 3]``); ``usable_images bool [I]``; ``probe_rows [P]`` / ``probe_boxes [P, 4]`` the
-    virtual box probes (:func:`detdiff.data.probes.box_probes`).
+    virtual box probes (:func:`detdiff.data.probes.box_probes`); ``places``: places to judge for an unannotated
+    object (:class:`Places`), each by the fold model of its image.
     """
     cfg, flips, seed = config["crossfit"], str(config["train"]["flips"]), int(config["train"]["seed"])
     folds = int(cfg["folds"])
@@ -309,8 +375,11 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
         raise ValueError(f"crossfit.folds must be at least 2, got {folds}")
     out_dir = Path(rundir) / CROSSFIT_DIR
     out_dir.mkdir(parents=True, exist_ok=True)
-    key = fold_key(trained, probe_rows, probe_boxes, config)
+    places = Places.none() if places is None else places
+    key = fold_key(trained, probe_rows, probe_boxes, config, places)
     inputs = _Inputs(original, trained, crops, probe_rows, probe_boxes, usable_images, int(cfg["input_size"]))
+    place_rows = _place_rows(places, original, inputs)
+    place_object_p = np.full(len(places.image), np.nan)
     fold_of_image = assign_folds(original.num_images, folds, seed)
     fold = fold_of_image[original.ann_image_index]
     num_classes = original.num_classes
@@ -325,6 +394,7 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
                 if str(saved["key"]) == key:
                     probs[saved["rows"]], box_units[saved["rows"]] = saved["probs"], saved["box"]
                     probe_units[saved["probe_positions"]] = saved["probe_box"]
+                    place_object_p[saved["place_positions"]] = saved["place_object_p"]
                     seconds += float(saved["seconds"])
                     continue
         todo.append(k)
@@ -337,20 +407,24 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
             start = time.perf_counter()
             model = _train_fold(inputs, train_rows[k], num_classes, cfg, flips, seed, k, bar)
             rows = np.flatnonzero(inputs.scorable & (fold == k))
-            p, b = _predict(model, inputs, rows, inputs.units[rows], inputs.geometry[rows], flips)
+            p, b, _ = _predict(model, inputs, rows, inputs.units[rows], inputs.geometry[rows], flips)
             here = np.flatnonzero(fold[inputs.probe_rows] == k)
-            _, pb = _predict(model, inputs, inputs.probe_rows[here], inputs.probe_units[here],
-                             inputs.probe_geometry[here], flips)
+            _, pb, _ = _predict(model, inputs, inputs.probe_rows[here], inputs.probe_units[here],
+                                inputs.probe_geometry[here], flips)
+            mine = np.flatnonzero(fold_of_image[places.image] == k)
+            _, _, po = _predict(model, place_rows, mine, place_rows.units[mine], place_rows.geometry[mine], flips)
             elapsed = time.perf_counter() - start
             probs[rows], box_units[rows] = p, b
             probe_units[here] = pb
+            place_object_p[mine] = po
             _save_fold(out_dir / f"fold_{k}.npz", key=np.array(key), rows=rows, probs=p, box=b,
-                       probe_positions=here, probe_box=pb, seconds=np.float64(elapsed))
+                       probe_positions=here, probe_box=pb, place_positions=mine, place_object_p=po,
+                       seconds=np.float64(elapsed))
             seconds += elapsed
     box = from_reference_units(box_units, inputs.reference)
     probe_box = from_reference_units(probe_units, inputs.reference[inputs.probe_rows])
     result = CrossFitResult(probs, box, fold, inputs.probe_rows, np.asarray(probe_boxes, np.float64), probe_box,
-                            seconds)
+                            seconds, places.image.astype(np.int64), places.box.astype(np.float64), place_object_p)
     _save_fold(out_dir / PREDICTIONS_FILE, **{k: np.asarray(v) for k, v in vars(result).items()})
     return result
 

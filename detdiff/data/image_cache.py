@@ -298,7 +298,7 @@ def _to_rgb8(im: Image.Image) -> np.ndarray:
     return np.asarray(im if mode == "RGB" else im.convert("RGB"))      # convert("RGB") of RGB copies
 
 
-class _Refused(Exception):
+class Refused(Exception):
     """An image that cannot be used; the message is the reason recorded in problems.json."""
 
 
@@ -328,9 +328,9 @@ def draft_reduction(width: int, height: int, boxes_xywh: np.ndarray, image_size:
     return int(draft_reductions(np.array([width]), np.array([height]), np.array([smallest]), image_size)[0])
 
 
-def _decode_full(path: Path, max_pixels: int,
+def decode_full(path: Path, max_pixels: int,
                  reduce: Callable[[int, int], int] | None = None) -> tuple[np.ndarray, int]:
-    """Read one file into uint8 RGB, EXIF orientation applied; returns (pixels, reduction); raise ``_Refused``.
+    """Read one file into uint8 RGB, EXIF orientation applied; returns (pixels, reduction); raise ``Refused``.
 
     ``reduce(width, height) -> r`` (header size, before EXIF rotation) asks for a JPEG decoded at ``1/r`` of
     its size (``Image.draft``); other formats and ``reduce=None`` decode at full resolution (reduction 1).
@@ -338,18 +338,18 @@ def _decode_full(path: Path, max_pixels: int,
     try:
         size = path.stat().st_size
     except FileNotFoundError:
-        raise _Refused("file not found") from None
+        raise Refused("file not found") from None
     except OSError as exc:
-        raise _Refused(f"cannot read file: {exc.strerror or exc}") from None
+        raise Refused(f"cannot read file: {exc.strerror or exc}") from None
     if size == 0:
-        raise _Refused("empty file (0 bytes)")
+        raise Refused("empty file (0 bytes)")
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", Image.DecompressionBombWarning)
             with Image.open(path) as im:
                 w, h = im.size                      # from the header; nothing is decoded yet
                 if w * h > max_pixels:
-                    raise _Refused(f"{w}x{h} = {w * h} pixels exceeds data.max_pixels = {max_pixels}; "
+                    raise Refused(f"{w}x{h} = {w * h} pixels exceeds data.max_pixels = {max_pixels}; "
                                    f"refused before decoding")
                 reduction = reduce(w, h) if reduce is not None and im.format in ("JPEG", "MPO") else 1
                 if reduction > 1:
@@ -358,14 +358,14 @@ def _decode_full(path: Path, max_pixels: int,
                 im.load()
                 ImageOps.exif_transpose(im, in_place=True)    # COCO sizes are of the displayed image
                 return _to_rgb8(im), reduction
-    except _Refused:
+    except Refused:
         raise
     except Image.DecompressionBombError as exc:
-        raise _Refused(f"refused before decoding by Pillow's decompression-bomb limit ({exc})") from None
+        raise Refused(f"refused before decoding by Pillow's decompression-bomb limit ({exc})") from None
     except UnidentifiedImageError:
-        raise _Refused("not an image (no known image format)") from None
+        raise Refused("not an image (no known image format)") from None
     except (OSError, SyntaxError, ValueError, TypeError, EOFError, MemoryError) as exc:
-        raise _Refused(f"corrupt or truncated image ({type(exc).__name__}: {exc})") from None
+        raise Refused(f"corrupt or truncated image ({type(exc).__name__}: {exc})") from None
 
 
 def view_extent(declared_w: int, declared_h: int, image_size: int) -> tuple[int, int]:
@@ -462,10 +462,10 @@ def _decode_task(task: tuple[int, str | None, str | None, int, int, np.ndarray, 
 
     try:
         if refusal is not None:
-            raise _Refused(refusal)
-        full, reduction = _decode_full(Path(path), _WORKER["max_pixels"],
+            raise Refused(refusal)
+        full, reduction = decode_full(Path(path), _WORKER["max_pixels"],
                                        reduce if _WORKER["reduced_decode"] else None)
-    except _Refused as exc:
+    except Refused as exc:
         _store(out, "images", index, 1, None)
         if grid.num_tiles:
             _store(out, "tiles", first_tile, grid.num_tiles, None)

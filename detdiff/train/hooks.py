@@ -18,7 +18,7 @@ import torch
 from torch import nn
 from tqdm import tqdm
 
-from detdiff.boxes import concatenated_ranges
+from detdiff.boxes import parts_of_boxes
 from detdiff.data.coco import CocoDataset
 from detdiff.model.losses import LossStreams
 from detdiff.train import distributed as ddp
@@ -65,28 +65,6 @@ def _xyxy_view_to_xywh_orig(boxes: torch.Tensor, scale: np.ndarray, origin: np.n
     return np.concatenate([b[:, :2], b[:, 2:] - b[:, :2]], axis=1).astype(np.float32)
 
 
-#: A tile's confident detection that covers at least this share of its own area with an annotation of the image is
-#: a view of that annotation (e.g. the part of a box that a tile border cut off), not a missing box.
-PART_OF_BOX = 0.5
-
-
-def _parts_of_boxes(ann_xyxy: np.ndarray, image_offsets: np.ndarray, image_index: np.ndarray,
-                    boxes_xywh: np.ndarray) -> np.ndarray:
-    """bool ``[n]``: detections (``boxes_xywh`` original px of images ``image_index``) lying mostly inside an
-    annotated box of their image (intersection over the detection's area >= :data:`PART_OF_BOX`); ``ann_xyxy [A, 4]``
-    are the dataset's boxes, image ``i``'s at ``image_offsets[i]:image_offsets[i + 1]`` (a zero box never holds a
-    part)."""
-    count = image_offsets[image_index + 1] - image_offsets[image_index]
-    det = np.repeat(np.concatenate([boxes_xywh[:, :2], boxes_xywh[:, :2] + boxes_xywh[:, 2:]], axis=1), count, axis=0)
-    rows = concatenated_ranges(image_offsets[image_index], count)
-    ann = ann_xyxy[rows]
-    inter = np.prod(np.clip(np.minimum(det[:, 2:], ann[:, 2:]) - np.maximum(det[:, :2], ann[:, :2]), 0, None), axis=1)
-    share = inter / np.maximum(np.prod(det[:, 2:] - det[:, :2], axis=1), 1e-9)
-    best = np.zeros(len(image_index))
-    np.maximum.at(best, np.repeat(np.arange(len(image_index)), count), share)
-    return best >= PART_OF_BOX
-
-
 class LossLogHook(Hook):
     """Writes every step's per-image / per-object records through :class:`LossLogWriter`; one folder per epoch.
 
@@ -128,7 +106,7 @@ class LossLogHook(Hook):
             tile = batch.view_index[where] >= self.num_images
             if tile.any():
                 part = np.zeros(len(where), dtype=bool)
-                part[tile] = _parts_of_boxes(self.ann_xyxy, self.image_offsets, unmatched["image_index"][tile],
+                part[tile] = parts_of_boxes(self.ann_xyxy, self.image_offsets, unmatched["image_index"][tile],
                                              unmatched["box"][tile].astype(np.float64))
                 unmatched = {k: v[~part] for k, v in unmatched.items()}
         self.writer.process(batch.image_index, image, object_index, objects, unmatched)

@@ -1,0 +1,58 @@
+"""Crops of the places where the detector saw an object nobody annotated, cut from the original images.
+
+The cross-fit's crop models judge each place out of sample (:mod:`detdiff.crossfit.folds`): is an object centred
+there, to a model that never trained on the image? The places are known only after the detector's final pass,
+so their images are decoded a second time; each JPEG is decoded at the largest reduction that keeps its smallest
+place :data:`detdiff.data.image_cache.MIN_CROP_SIDE` px across (``Image.draft``, as the image cache does), and
+the crops are cut exactly as an annotation's (:func:`detdiff.crossfit.crops.object_crops`).
+"""
+
+from __future__ import annotations
+
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+from tqdm import tqdm
+
+from detdiff.crossfit.crops import STORE, object_crops
+from detdiff.crossfit.folds import Places
+from detdiff.data.coco import CocoDataset
+from detdiff.data.image_cache import Refused, decode_full, draft_reduction
+
+
+def _image_crops(path: Path, declared: tuple[int, int], boxes_xywh: np.ndarray, max_pixels: int) -> np.ndarray | None:
+    """Crops of ``boxes_xywh`` (declared px) in one image, or None where the file cannot be decoded."""
+    def reduce(file_w: int, file_h: int) -> int:
+        return draft_reduction(file_w, file_h, boxes_xywh, 0) if sorted((file_w, file_h)) == sorted(declared) else 1
+
+    try:
+        full, _ = decode_full(path, max_pixels, reduce)
+    except Refused:
+        return None
+    h, w = full.shape[:2]
+    return object_crops(full, boxes_xywh * np.array([w / declared[0], h / declared[1]] * 2))
+
+
+def place_crops(dataset: CocoDataset, image: np.ndarray, box_xywh: np.ndarray, *, max_pixels: int,
+                threads: int = 2, progress: bool = True) -> Places:
+    """:class:`Places` of ``image [N]`` rows and ``box_xywh [N, 4]``; places of an image that cannot be decoded (it
+    changed since the cache was built) are left out."""
+    image = np.asarray(image, dtype=np.int64)
+    box_xywh = np.asarray(box_xywh, dtype=np.float64).reshape(-1, 4)
+    crops = np.zeros((len(image), STORE, STORE, 3), np.uint8)
+    ok = np.zeros(len(image), dtype=bool)
+    root = dataset.images_dir if dataset.images_dir is not None else Path(".")
+    images = np.unique(image)
+
+    def cut(i: int) -> tuple[np.ndarray, np.ndarray | None]:
+        rows = np.flatnonzero(image == i)
+        declared = (int(dataset.widths[i]), int(dataset.heights[i]))
+        return rows, _image_crops(root / dataset.file_names[i], declared, box_xywh[rows], max_pixels)
+
+    with ThreadPoolExecutor(max(1, int(threads))) as pool:
+        for rows, cut_crops in tqdm(pool.map(cut, images), total=len(images), desc="cut place crops", unit="image",
+                                    disable=not progress, leave=False):
+            if cut_crops is not None:
+                crops[rows], ok[rows] = cut_crops, True
+    return Places(image[ok], box_xywh[ok], crops[ok])

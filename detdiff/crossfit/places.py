@@ -42,13 +42,12 @@ def place_crops(dataset: CocoDataset, image: np.ndarray, box_xywh: np.ndarray, *
     box_xywh = np.asarray(box_xywh, dtype=np.float64).reshape(-1, 4)
     crops = np.zeros((len(image), STORE, STORE, 3), np.uint8)
     ok = np.zeros(len(image), dtype=bool)
-    root = dataset.images_dir if dataset.images_dir is not None else Path(".")
     images = np.unique(image)
 
     def cut(i: int) -> tuple[np.ndarray, np.ndarray | None]:
         rows = np.flatnonzero(image == i)
         declared = (int(dataset.widths[i]), int(dataset.heights[i]))
-        return rows, _image_crops(root / dataset.file_names[i], declared, box_xywh[rows], max_pixels)
+        return rows, _image_crops(dataset.image_path(i), declared, box_xywh[rows], max_pixels)
 
     with ThreadPoolExecutor(max(1, int(threads))) as pool:
         for rows, cut_crops in tqdm(pool.map(cut, images), total=len(images), desc="cut place crops", unit="image",

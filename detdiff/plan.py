@@ -301,8 +301,8 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
         fold_rows = [int((trainable & (fold != k)).sum()) for k in range(folds)]
         crop_steps = sum(fold_steps(n, float(cfg["epochs"]), int(cfg["batch_size"])) for n in fold_rows)
         # the places judged for an unannotated object: their images decoded again (reduced by the smallest box, as
-        # detdiff.crossfit.places does) and up to log.unmatched_per_image places per image predicted
-        places = int(config["log"]["unmatched_per_image"]) * images
+        # detdiff.crossfit.places does) and up to crossfit.places_per_image places per image predicted
+        places = int(cfg["places_per_image"]) * images
         place_decode = warm.decode_s_per_work * float(
             decode_work(dataset, 0, bool(config["data"]["reduced_decode"])).sum()) / workers
         if warm.crop_step_s is not None:

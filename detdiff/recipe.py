@@ -467,7 +467,7 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
         step_s, predict_s = measure_crop_seconds(config, dataset.num_classes)
         recipe.estimate.update({"crop_step_s": round(step_s, 4), "crop_predict_s_per_box": round(predict_s, 6)})
         per_epoch = folds * math.ceil(boxes * (folds - 1) / folds / crop_batch) * step_s
-        places = int(config["log"]["unmatched_per_image"]) * images       # unannotated places judged, at most
+        places = int(crossfit["places_per_image"]) * images       # unannotated places judged, at most
         predictions = (2 * boxes + places) * predict_s   # every box and its box probe, once each, and the places
         crop_budget = budget * (1 - float(cfg["detector_share"]))
         if auto_crop and float(crossfit["epochs"]) * per_epoch + predictions > crop_budget:

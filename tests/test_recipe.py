@@ -97,15 +97,17 @@ def test_auto_budget_counts_images_their_tiles_and_boxes() -> None:
 
 def test_crop_estimate_covers_the_folds_steps_and_predictions() -> None:
     # Boxes 4x those of another set: the crop models' estimate grows with both their training steps (epochs x
-    # boxes) and their predictions (every box and its box probe), each at the timed seconds the recipe saves.
+    # boxes) and their predictions (every box and its box probe, and up to crossfit.places_per_image places in each
+    # of the 60 images), each at the timed seconds the recipe saves.
     wh = np.random.default_rng(5).uniform(15, 80, (600, 2))
     config = load_config(overrides={"recipe": {"budget_minutes": 600}, "crossfit": {"epochs": 2}})
     _, recipe = fit_recipe(_dataset(wh), config, measure=True)
     est = recipe.estimate
     assert est["crop_step_s"] > 0 and est["crop_predict_s_per_box"] > 0
     steps = 3 * int(np.ceil(600 * 2 / 3 / 128))                        # three folds, one epoch each
+    places = int(config["crossfit"]["places_per_image"]) * 60
     assert est["crop_models_s"] == pytest.approx(2 * steps * est["crop_step_s"]
-                                                 + 2 * 600 * est["crop_predict_s_per_box"], rel=1e-3, abs=0.2)
+                                                 + (2 * 600 + places) * est["crop_predict_s_per_box"], rel=1e-3, abs=0.2)
 
 
 def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:

@@ -266,8 +266,9 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
     with pytest.raises(ValueError, match=r"detections\.json: record 0 names image_id 999"):
         read_detections(path, ds)
     # the cross-fit's objectness joins each place by image and box, whatever the order, and makes every place
-    # listable, scored (detector score + objectness) / 2; a place the fold models did not judge reads 0
-    from detdiff.analysis.self_check import judged_places, place_objectness
+    # listable, scored by the objectness with the detector's score as a small second term; a place the fold models
+    # did not judge reads objectness 0
+    from detdiff.analysis.self_check import PLACE_DETECTOR_WEIGHT, judged_places, place_objectness
     from detdiff.crossfit.folds import CrossFitResult
     everything = pd.concat([seen_twice, final_only], ignore_index=True)
     boxes = everything[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64)
@@ -280,6 +281,7 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
     np.testing.assert_array_equal(place_objectness(everything, prediction), expected)
     listable, image_only = judged_places(ds, seen_twice, final_only, prediction)
     assert image_only is None and len(listable) == len(everything)
-    np.testing.assert_allclose(listable["score"], (everything["score"] + np.nan_to_num(expected)) / 2)
+    np.testing.assert_allclose(listable["score"], (np.nan_to_num(expected) + PLACE_DETECTOR_WEIGHT * everything["score"])
+                               / (1 + PLACE_DETECTOR_WEIGHT))
     assert listable["evidence"].str.contains("sees an object there with probability").all()
     assert "detection of the trained detector matching no annotation" in listable["evidence"].iat[-1]

@@ -164,8 +164,8 @@ def suspect_advice(run: RunFolder) -> list[Advice]:
         elif kind == "missing_box":
             name, count = _most_common(suggested[mask])
             clause = _share_clause(total, count, f"'{name}'") if name else ""
-            text = (f"Add {_plural(total, 'missing box')} where the detector keeps finding an unlabelled "
-                    f"object{clause}.")
+            text = (f"Add {_plural(total, 'missing box')} where the detector found an object nobody "
+                    f"labelled{clause}.")
         else:
             name, count = _most_common(labelled[mask])
             clause = _share_clause(total, count, f"'{name}'") if name else ""

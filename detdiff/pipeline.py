@@ -124,7 +124,7 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
 
     from detdiff.analysis.suspects import unannotated_places
     from detdiff.crossfit.folds import cross_fit
-    from detdiff.crossfit.places import place_crops
+    from detdiff.crossfit.places import PLACE_CROPS_FILE, place_crops
     from detdiff.data.probes import box_probes
     from detdiff.train.resources import thread_count
 
@@ -136,16 +136,21 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
     missing_rows = np.flatnonzero(trained.iscrowd & ~dataset.iscrowd)
     places = pd.concat(unannotated_places(dataset, rundir, missing_rows, config))
     threads = thread_count(config["train"])
-    places = place_crops(dataset, places["image_index"].to_numpy(np.int64),
-                         places[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64),
-                         max_pixels=int(config["data"]["max_pixels"]), threads=threads, progress=progress)
+    store = rundir / "crossfit" / PLACE_CROPS_FILE
+    store.parent.mkdir(parents=True, exist_ok=True)
     saved = torch.get_num_threads()
-    torch.set_num_threads(threads)
     try:
+        places = place_crops(dataset, places["image_index"].to_numpy(np.int64),
+                             places[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64),
+                             max_pixels=int(config["data"]["max_pixels"]), threads=threads, progress=progress,
+                             store=store)
+        torch.set_num_threads(threads)
         return cross_fit(dataset, trained, cache.crops, cache.usable, probe_rows, probe_boxes, config, rundir,
                          places=places, progress=progress)
     finally:
         torch.set_num_threads(saved)
+        del places
+        store.unlink(missing_ok=True)
 
 
 def run_overrides(*, image_size: int | None = None, epochs: int | None = None, batch_size: int | None = None,

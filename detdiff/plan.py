@@ -225,6 +225,13 @@ def _bytes_in(paths: list[Path]) -> int:
     return total
 
 
+def place_crop_bytes(images: int, config: dict[str, Any]) -> int:
+    """Bytes of the place crops' working file (:data:`detdiff.crossfit.places.PLACE_CROPS_FILE`) at most."""
+    from detdiff.crossfit.crops import crop_bytes
+
+    return crop_bytes(int(config["crossfit"]["places_per_image"]) * images)
+
+
 def _disk(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm: Warmup, boxes: int,
           detections: float) -> None:
     """Disk parts, their basis and what each already has in the run folder."""
@@ -243,9 +250,12 @@ def _disk(plan: Plan, dataset: CocoDataset, config: dict[str, Any], warm: Warmup
                        ["object_features.npy", "detections.json"],
                        f"{warm.feature_channels} float32 features per box, about {DETECTIONS_PER_BOX:g} detections "
                        f"per box at {DETECTION_BYTES} bytes"),
-        "cross-fit": ((CROSSFIT_BYTES_PER_BOX + CROSSFIT_BYTES_PER_BOX_CLASS * classes) * boxes if crops_on else 0,
+        "cross-fit": (((CROSSFIT_BYTES_PER_BOX + CROSSFIT_BYTES_PER_BOX_CLASS * classes) * boxes
+                       + place_crop_bytes(images, config)) if crops_on else 0,
                       ["crossfit"], f"{CROSSFIT_BYTES_PER_BOX} + {CROSSFIT_BYTES_PER_BOX_CLASS} x classes bytes "
-                                    f"per box (fold files and predictions)"),
+                                    f"per box (fold files and predictions), and the crops of up to "
+                                    f"{int(config['crossfit']['places_per_image'])} places per image while they are "
+                                    f"judged"),
         "tables": (TABLE_BYTES_PER_BOX * dataset.num_annotations + TABLE_BYTES_PER_IMAGE * images + TABLE_BYTES_FIXED,
                    [*(f"{t}.{e}" for t in ("images", "objects", "suspects", "classes", "causes")
                       for e in ("csv", "parquet")), "review.json"],

@@ -247,15 +247,19 @@ def test_place_crops_are_object_crops_of_the_opencv_decoded_image(tmp_path) -> N
     from digits_scene import build_digit_scenes
     ann, images, _ = build_digit_scenes(tmp_path, num_images=4, seed=1)
     ds = build_dataset(json.loads(ann.read_text()), ann_path=ann, images_dir=images)
-    image = np.array([0, 0, 2, 3])
-    boxes = np.array([[5.0, 6.0, 20.0, 24.0], [60.0, 40.0, 30.0, 30.0], [0.0, 0.0, 12.0, 9.0], [100.0, 90.0, 40.0, 50.0]])
+    image = np.array([0, 2, 3, 0])                           # one image's places need not be adjacent
+    boxes = np.array([[5.0, 6.0, 20.0, 24.0], [0.0, 0.0, 12.0, 9.0], [100.0, 90.0, 40.0, 50.0], [60.0, 40.0, 30.0, 30.0]])
+    reference = np.stack([object_crops(cv2.cvtColor(cv2.imread(str(images / ds.file_names[i])), cv2.COLOR_BGR2RGB),
+                                       b[None])[0] for i, b in zip(image, boxes)])
     places = place_crops(ds, image, boxes, max_pixels=10**8, threads=2, progress=False)
     assert np.array_equal(places.image, image) and np.array_equal(places.box, boxes)
-    for k in range(len(image)):
-        rgb = cv2.cvtColor(cv2.imread(str(images / ds.file_names[image[k]])), cv2.COLOR_BGR2RGB)
-        assert np.array_equal(places.crops[k], object_crops(rgb, boxes[k:k + 1])[0])
+    assert np.array_equal(places.crops, reference)
+    stored = place_crops(ds, image, boxes, max_pixels=10**8, progress=False, store=tmp_path / "places.npy")
+    assert isinstance(stored.crops, np.memmap) and np.array_equal(stored.crops, reference)   # same crops, on disk
     (images / ds.file_names[2]).unlink()                     # an image gone since the cache: its place is left out
-    assert len(place_crops(ds, image, boxes, max_pixels=10**8, progress=False).image) == 3
+    for store in (None, tmp_path / "again.npy"):
+        kept = place_crops(ds, image, boxes, max_pixels=10**8, progress=False, store=store)
+        assert np.array_equal(kept.image, image[[0, 2, 3]]) and np.array_equal(kept.crops, reference[[0, 2, 3]])
 
 
 def test_objectness_of_fold_models_finds_unannotated_digits_on_real_textures(tmp_path) -> None:

@@ -20,6 +20,11 @@ from detdiff.crossfit.folds import Places
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import Refused, decode_full, draft_reduction
 
+#: The working file of the place crops in ``RUNDIR/crossfit`` while the fold models judge them (removed after).
+PLACE_CROPS_FILE = "places.tmp.npy"
+#: Places moved per step when those of undecodable images are dropped (bounds the copy's memory).
+COMPACT_ROWS = 4096
+
 
 def _image_crops(path: Path, declared: tuple[int, int], boxes_xywh: np.ndarray, max_pixels: int) -> np.ndarray | None:
     """Crops of ``boxes_xywh`` (declared px) in one image, or None where the file cannot be decoded."""
@@ -35,23 +40,34 @@ def _image_crops(path: Path, declared: tuple[int, int], boxes_xywh: np.ndarray, 
 
 
 def place_crops(dataset: CocoDataset, image: np.ndarray, box_xywh: np.ndarray, *, max_pixels: int,
-                threads: int = 2, progress: bool = True) -> Places:
+                threads: int = 2, progress: bool = True, store: Path | None = None) -> Places:
     """:class:`Places` of ``image [N]`` rows and ``box_xywh [N, 4]``; places of an image that cannot be decoded (it
-    changed since the cache was built) are left out."""
+    changed since the cache was built) are left out. ``store``: a working file that holds the crops (a uint8 memory
+    map, 12 KiB per place) instead of memory; the caller removes it when the places are judged."""
     image = np.asarray(image, dtype=np.int64)
     box_xywh = np.asarray(box_xywh, dtype=np.float64).reshape(-1, 4)
-    crops = np.zeros((len(image), STORE, STORE, 3), np.uint8)
+    shape = (len(image), STORE, STORE, 3)
+    if store is None or not len(image):
+        crops = np.zeros(shape, np.uint8)
+    else:
+        crops = np.lib.format.open_memmap(store, mode="w+", dtype=np.uint8, shape=shape)
     ok = np.zeros(len(image), dtype=bool)
-    images = np.unique(image)
+    order = np.argsort(image, kind="stable")
+    images, starts = np.unique(image[order], return_index=True)
+    groups = np.split(order, starts[1:])
 
-    def cut(i: int) -> tuple[np.ndarray, np.ndarray | None]:
-        rows = np.flatnonzero(image == i)
+    def cut(job: tuple[int, np.ndarray]) -> tuple[np.ndarray, np.ndarray | None]:
+        i, rows = job
         declared = (int(dataset.widths[i]), int(dataset.heights[i]))
         return rows, _image_crops(dataset.image_path(i), declared, box_xywh[rows], max_pixels)
 
     with ThreadPoolExecutor(max(1, int(threads))) as pool:
-        for rows, cut_crops in tqdm(pool.map(cut, images), total=len(images), desc="cut place crops", unit="image",
-                                    disable=not progress, leave=False):
+        for rows, cut_crops in tqdm(pool.map(cut, zip(images.tolist(), groups)), total=len(images),
+                                    desc="cut place crops", unit="image", disable=not progress, leave=False):
             if cut_crops is not None:
                 crops[rows], ok[rows] = cut_crops, True
-    return Places(image[ok], box_xywh[ok], crops[ok])
+    kept = np.flatnonzero(ok)
+    for start in range(0, len(kept), COMPACT_ROWS):          # move the decoded places to the front, in place
+        chunk = kept[start:start + COMPACT_ROWS]
+        crops[start:start + len(chunk)] = crops[chunk]
+    return Places(image[kept], box_xywh[kept], crops[:len(kept)])

@@ -12,7 +12,7 @@ self-measured figures within 0.05 of the truth; an 800-image audit within 10 min
 plan's projected seconds beside the measured ones (``run.json["plan_seconds"]``, :mod:`detdiff.plan`) and their
 ratio, against the goal measured / projected within 0.75-1.25 (stored in ``validity.json`` as ``plan_ratio``).
 
-    .venv/bin/python tests/benchmarks/bench_validity.py [--scenarios warehouse aerial digits] [--seeds 1 2]
+    .venv/bin/python tests/benchmarks/bench_validity.py [--scenarios warehouse aerial digits streetcam] [--seeds 1 2]
         [--num-images 800] [--out DIR] [--set section.key=value ...]
 """
 
@@ -102,7 +102,7 @@ def print_plan(plan: dict) -> None:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--scenarios", nargs="+", default=["warehouse", "aerial", "digits"])
+    parser.add_argument("--scenarios", nargs="+", default=["warehouse", "aerial", "digits", "streetcam"])
     parser.add_argument("--seeds", nargs="+", type=int, default=[1, 2])
     parser.add_argument("--num-images", type=int, default=800)
     parser.add_argument("--out", type=Path, default=None)

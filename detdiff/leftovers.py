@@ -56,6 +56,7 @@ TEMP_NAMES: tuple[TempName, ...] = (
     TempName("log", rf"epoch_\d{{4}}(?:\.rank\d+)?\.tmp-{_PID}", "detdiff/train/loss_log.py"),
     TempName("log", r"epoch_\d{4}\.rank\d+", "detdiff/train/loss_log.py"),
     TempName("crossfit", rf"(?:fold_\d+|predictions)\.tmp-{_PID}\.npz", "detdiff/crossfit/folds.py"),
+    TempName("crossfit", rf"places\.tmp-{_PID}\.npy", "detdiff/crossfit/places.py"),
     TempName("report", rf"\.index\.html\.tmp-{_PID}", "detdiff/report/html.py"),
     TempName("plots", rf"[\w.-]+\.png\.tmp-{_PID}", "detdiff/report/plots.py"),
 )

@@ -124,7 +124,7 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
 
     from detdiff.analysis.suspects import unannotated_places
     from detdiff.crossfit.folds import cross_fit
-    from detdiff.crossfit.places import PLACE_CROPS_FILE, place_crops
+    from detdiff.crossfit.places import place_crops, place_crops_path
     from detdiff.data.probes import box_probes
     from detdiff.train.resources import thread_count
 
@@ -136,7 +136,7 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
     missing_rows = np.flatnonzero(trained.iscrowd & ~dataset.iscrowd)
     places = pd.concat(unannotated_places(dataset, rundir, missing_rows, config))
     threads = thread_count(config["train"])
-    store = rundir / "crossfit" / PLACE_CROPS_FILE
+    store = place_crops_path(rundir / "crossfit")
     store.parent.mkdir(parents=True, exist_ok=True)
     saved = torch.get_num_threads()
     try:

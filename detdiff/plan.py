@@ -226,7 +226,7 @@ def _bytes_in(paths: list[Path]) -> int:
 
 
 def place_crop_bytes(images: int, config: dict[str, Any]) -> int:
-    """Bytes of the place crops' working file (:data:`detdiff.crossfit.places.PLACE_CROPS_FILE`) at most."""
+    """Bytes of the place crops' working file (:func:`detdiff.crossfit.places.place_crops_path`) at most."""
     from detdiff.crossfit.crops import crop_bytes
 
     return crop_bytes(int(config["crossfit"]["places_per_image"]) * images)

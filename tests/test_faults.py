@@ -121,6 +121,7 @@ def test_leftovers_are_removed_by_name_and_nothing_else(tmp_path):
             f".write-probe-{dead}", f"cache/images.u8.tmp-{dead}", f"cache/crops.u8.tmp-{dead}",
             f"cache/meta.tmp-{dead}.npz", f"cache/decode-progress.tmp-{dead}.npz", f"cache/problems.json.tmp-{dead}",
             f"cache/.write-probe-{dead}", f"crossfit/fold_2.tmp-{dead}.npz", f"crossfit/predictions.tmp-{dead}.npz",
+            f"crossfit/places.tmp-{dead}.npy",
             f"report/.index.html.tmp-{dead}", f"plots/causes_loc.png.tmp-{dead}"]
     temp_dirs = [f"log/epoch_0003.tmp-{dead}", f"log/epoch_0001.rank1.tmp-{dead}", "log/epoch_0002.rank0"]
     keep = ["images.csv", "notes.tmp.txt", "my.tmp-x", "cache/images.u8", "cache/images.u8.partial",
@@ -139,7 +140,7 @@ def test_leftovers_are_removed_by_name_and_nothing_else(tmp_path):
     assert all((tmp_path / rel).exists() for rel in keep)
     assert find_leftovers(tmp_path) == []
     line = leftovers.leftovers_line(tmp_path, count, freed)
-    assert re.fullmatch(r"detdiff: removed 22 temporary files of an interrupted run from .+ "
+    assert re.fullmatch(r"detdiff: removed 23 temporary files of an interrupted run from .+ "
                         r"\([\d.]+ (?:kB|MB) reclaimed\)", line)
 
 

@@ -9,6 +9,7 @@ the crops are cut exactly as an annotation's (:func:`detdiff.crossfit.crops.obje
 
 from __future__ import annotations
 
+import os
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -20,8 +21,6 @@ from detdiff.crossfit.folds import Places
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import Refused, decode_full, draft_reduction
 
-#: The working file of the place crops in ``RUNDIR/crossfit`` while the fold models judge them (removed after).
-PLACE_CROPS_FILE = "places.tmp.npy"
 #: Places moved per step when those of undecodable images are dropped (bounds the copy's memory).
 COMPACT_ROWS = 4096
 
@@ -37,6 +36,12 @@ def _image_crops(path: Path, declared: tuple[int, int], boxes_xywh: np.ndarray, 
         return None
     h, w = full.shape[:2]
     return object_crops(full, boxes_xywh * np.array([w / declared[0], h / declared[1]] * 2))
+
+
+def place_crops_path(crossfit_dir: Path) -> Path:
+    """The working file of the place crops in ``RUNDIR/crossfit`` while the fold models judge them: removed after,
+    and by :mod:`detdiff.leftovers` when an interrupted run left it (the process id marks whose it is)."""
+    return Path(crossfit_dir) / f"places.tmp-{os.getpid()}.npy"
 
 
 def place_crops(dataset: CocoDataset, image: np.ndarray, box_xywh: np.ndarray, *, max_pixels: int,

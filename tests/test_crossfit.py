@@ -248,7 +248,8 @@ def test_place_crops_are_object_crops_of_the_opencv_decoded_image(tmp_path) -> N
     ann, images, _ = build_digit_scenes(tmp_path, num_images=4, seed=1)
     ds = build_dataset(json.loads(ann.read_text()), ann_path=ann, images_dir=images)
     image = np.array([0, 2, 3, 0])                           # one image's places need not be adjacent
-    boxes = np.array([[5.0, 6.0, 20.0, 24.0], [0.0, 0.0, 12.0, 9.0], [100.0, 90.0, 40.0, 50.0], [60.0, 40.0, 30.0, 30.0]])
+    boxes = np.array([[5.0, 6.0, 20.0, 24.0], [0.0, 0.0, 12.0, 9.0], [100.0, 90.0, 40.0, 50.0],
+                      [60.0, 40.0, 30.0, 30.0]])
     reference = np.stack([object_crops(cv2.cvtColor(cv2.imread(str(images / ds.file_names[i])), cv2.COLOR_BGR2RGB),
                                        b[None])[0] for i, b in zip(image, boxes)])
     places = place_crops(ds, image, boxes, max_pixels=10**8, threads=2, progress=False)

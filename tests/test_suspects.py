@@ -281,7 +281,7 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
     np.testing.assert_array_equal(place_objectness(everything, prediction), expected)
     listable, image_only = judged_places(ds, seen_twice, final_only, prediction)
     assert image_only is None and len(listable) == len(everything)
-    np.testing.assert_allclose(listable["score"], (np.nan_to_num(expected) + PLACE_DETECTOR_WEIGHT * everything["score"])
-                               / (1 + PLACE_DETECTOR_WEIGHT))
+    w = PLACE_DETECTOR_WEIGHT
+    np.testing.assert_allclose(listable["score"], (np.nan_to_num(expected) + w * everything["score"]) / (1 + w))
     assert listable["evidence"].str.contains("sees an object there with probability").all()
     assert "detection of the trained detector matching no annotation" in listable["evidence"].iat[-1]

@@ -27,13 +27,14 @@ Scores:
 * missing box: the places where the detector saw an unannotated object (persistent unmatched detections and the
   final pass's, :func:`detdiff.analysis.suspects.unannotated_places`), scored by the objectness the cross-fit's
   fold models give the place out of sample, with the detector's score (presence share x mean detection score and
-  the final pass's score, averaged) as a small second term (:func:`judged_places`); a proposal is a probe hit when it covers a planted
-  missing-box probe (IoU >= 0.5), and probe hits never reach an output. Proposals are candidates already, and
-  where most of them are real missing boxes they score like the probes: their AUROC against the probes is
-  then near 0.5 whether the evidence works or not. So whether it works is judged on images (each scored by
-  its best proposal, none = 0: images holding a probe against the others, which are mostly clean). Measured
-  against the planted truth: warehouse seed 2 (133 proposals, 112 planted missing boxes) had no list before
-  (probes against proposals AUROC 0.60, not above 0.5 at 95%), now 40 (precision 1.00, self-estimated 0.66);
+  the final pass's score, averaged) as a small second term (:func:`judged_places`); a proposal is a probe hit
+  when it covers a planted missing-box probe (IoU >= 0.5), and probe hits never reach an output. Proposals are
+  candidates already, and where most of them are real missing boxes they score like the probes: their AUROC
+  against the probes is then near 0.5 whether the evidence works or not. So whether it works is judged on
+  images (each scored by its best proposal, none = 0: images holding a probe against the others, which are
+  mostly clean). Measured against the planted truth: warehouse seed 2 (133 proposals, 112 planted missing
+  boxes) had no list before (probes against proposals AUROC 0.60, not above 0.5 at 95%), now 40 (precision
+  1.00, self-estimated 0.66);
   the five other audits measured keep their lists (their proposals passed the former test too). Letting the
   share of faults among proposals reach 1 as well lengthened the warehouse list to 94 (0.90 against 0.83) but
   put the held-out aerial list's precision at 0.93 against 0.53 (0.57 with the cap of one half), so the cap

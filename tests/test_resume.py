@@ -12,7 +12,7 @@ import time
 import numpy as np
 import pytest
 
-from detdiff.config import load_config, save_config
+from detdiff.config import ConfigError, load_config, save_config
 from detdiff.data.coco import build_dataset, read_coco_json
 from detdiff.data.scenarios import generate_demo
 from detdiff.data.image_cache import ImageCache, build_image_cache
@@ -142,5 +142,10 @@ def test_resume_with_a_changed_config_is_refused(setup, tmp_path):
     train_and_log(dataset, ImageCache.open(root / "cache"), short, tmp_path, progress=False)
     changed = load_config("ci", {"data": {"image_size": 64},
                                  "train": {"epochs": 1, "batch_size": 8, "threads": 1, "lr": 0.01}})
-    with pytest.raises(ValueError, match="train.lr"):
+    with pytest.raises(ConfigError, match="train.lr"):         # the CLI prints a ConfigError as one line
         train_and_log(dataset, ImageCache.open(root / "cache"), changed, tmp_path, resume=True, progress=False)
+    # cross-fit settings act after training (its folds carry their own key): a run resumes across them
+    later = load_config("ci", {"data": {"image_size": 64}, "crossfit": {"places_per_image": 4},
+                               "train": {"epochs": 1, "batch_size": 8, "threads": 1, "device": "cpu"}})
+    assert train_and_log(dataset, ImageCache.open(root / "cache"), later, tmp_path, resume=True,
+                         progress=False).resumed_from == 0       # epoch 0, the only one, was finished

@@ -28,6 +28,7 @@ import numpy as np
 import torch
 from torch import nn
 
+from detdiff.config import ConfigError
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache
 from detdiff.model.detector import Detector
@@ -41,8 +42,9 @@ from detdiff.train.optimizer import build_optimizer, warmup_cosine
 from detdiff.train.resources import check_room_on_main, checkpoint_bytes, log_bytes, thread_count
 
 LOG_DIR = "log"
-#: Config keys that may differ between a run and its resumption (they change speed, not results).
-RESUME_FREE_KEYS = {("train", "threads"), ("train", "device"), ("report",), ("analysis",), ("eval",)}
+#: Config keys that may differ between a run and its resumption: they change speed, not the training log, or act
+#: after training (the cross-fit keys its saved folds by its own settings and redoes those they change).
+RESUME_FREE_KEYS = {("train", "threads"), ("train", "device"), ("report",), ("analysis",), ("eval",), ("crossfit",)}
 
 
 class TrainingDiverged(RuntimeError):
@@ -212,12 +214,12 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
     if resume and ckpt_path.is_file():
         payload = load_checkpoint(ckpt_path, map_location=info.device)
         if payload["extra"].get("dataset") != dataset_key:
-            raise ValueError(f"{ckpt_path}: the checkpoint was trained on other data (saved "
+            raise ConfigError(f"{ckpt_path}: the checkpoint was trained on other data (saved "
                              f"{payload['extra'].get('dataset')}, now {dataset_key}: images, annotations or "
                              f"usable images differ); train afresh without resume")
         differences = _config_differences(payload["config"], config)
         if differences:
-            raise ValueError(f"{ckpt_path}: cannot resume with a different config ({', '.join(differences)} "
+            raise ConfigError(f"{ckpt_path}: cannot resume with a different config ({', '.join(differences)} "
                              f"changed); the log would not equal one run. Use the saved config or train afresh")
         model.load_state_dict(payload["model"])
         optimizer.load_state_dict(payload["optimizer"])

@@ -245,13 +245,13 @@ def judged_places(dataset: CocoDataset, seen_twice: pd.DataFrame, final_only: pd
         return seen_twice, final_only
     places = pd.concat([seen_twice, final_only], ignore_index=True)
     names = dict(zip(dataset.category_ids.tolist(), dataset.category_names))
-    once = np.arange(len(places)) >= len(seen_twice)
-    texts = places["evidence"].tolist()
-    for row in np.flatnonzero(once):
-        x, y, w, h = places.loc[row, ["suggested_x", "suggested_y", "suggested_w", "suggested_h"]]
-        texts[row] = (f"a '{names[int(places.at[row, 'suggested_category_id'])]}' detection of the trained detector "
-                      f"matching no annotation (score {2 * places.at[row, 'score']:.2f}) at [{x:.0f}, {y:.0f}, "
-                      f"{w:.0f}, {h:.0f}]")
+    once = places.iloc[len(seen_twice):]
+    boxes = once[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64)
+    texts = places["evidence"].tolist()[:len(seen_twice)] + [
+        f"a '{names[int(c)]}' detection of the trained detector matching no annotation (score {2 * s:.2f}) at "
+        f"[{x:.0f}, {y:.0f}, {w:.0f}, {h:.0f}]"
+        for c, s, (x, y, w, h) in zip(once["suggested_category_id"].to_numpy(), once["score"].to_numpy(np.float64),
+                                      boxes)]
     object_p = np.nan_to_num(object_p, nan=0.0)
     places["evidence"] = [f"{text}; a crop model trained on other images sees an object there with probability "
                           f"{p:.2f}" for text, p in zip(texts, object_p)]

@@ -24,6 +24,9 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
 * ``crossfit.precision``: ``auto`` becomes bfloat16 where a timed crop-model step runs at least
   :data:`BF16_MIN_SPEEDUP` times faster than in float32 (:func:`choose_crop_precision`). Same crops, 26 epochs,
   streetcam seed 1: float32 467 s, bfloat16 376 s; loose-box AUROC 0.927 / 0.924, wrong class 0.991 / 0.992.
+* ``train.precision``: the same choice for the detector's training step (:func:`choose_detector_precision`, timed
+  at the fitted view with the dataset's boxes per image; the faster step then buys epochs, tiles or view within the
+  budget).
 * **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image plus
   ``recipe.seconds_per_box`` per box, at least ``recipe.min_budget_minutes``: :func:`budget_seconds`; ``--budget``
   on the command line) bounds the training time, estimated from timed steps on this machine: the detector's
@@ -58,7 +61,7 @@ import math
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Callable
 
 import numpy as np
 import torch
@@ -210,33 +213,64 @@ def _timing_threads(config: dict[str, Any]):
         torch.set_num_threads(threads)
 
 
-def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int, boxes_per_image: int = 1) -> float:
-    """Seconds per training step of the detector (batch ``train.batch_size`` at ``image_size``, each image with
-    ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) on random data, the
-    typical of :data:`TIMED_STEPS` steps after one warm-up (:func:`time_calls`), with the thread count training
-    will use."""
+def detector_step(config: dict[str, Any], num_classes: int, image_size: int, boxes_per_image: int = 1,
+                  precision: str | None = None) -> Callable[[], None]:
+    """One training step of the detector (batch ``train.batch_size`` at ``image_size``, each image with
+    ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) on random data, at
+    ``precision`` (default ``train.precision``), as a callable for :func:`time_calls`."""
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
 
+    batch = int(config["train"]["batch_size"])
+    precision = str(config["train"].get("precision", "float32")) if precision is None else precision
+    detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size,
+                                    precision="float32" if _is_auto(precision) else precision)
+    optimizer = torch.optim.AdamW(detector.parameters(), lr=1e-4)
+    pixels = torch.randint(0, 256, (batch, image_size, image_size, 3), dtype=torch.uint8)
+    clip = float(config["train"].get("grad_clip") or 0.0)
+    count = max(1, int(boxes_per_image))
+    corner = torch.rand(batch, count, 2) * image_size * 0.8
+    extent = 8 + torch.rand(batch, count, 2) * image_size / 6
+    xyxy = torch.cat([corner, (corner + extent).clamp(max=image_size)], dim=2)
+    targets = [{"boxes": xyxy[b], "labels": torch.randint(0, max(1, num_classes), (count,))} for b in range(batch)]
+
+    def step() -> None:                            # as the training loop takes it, from uint8 pixels
+        images = pixels.permute(0, 3, 1, 2).float().div_(255.0)
+        streams = compute_loss_streams(detector(images), detector.anchors, targets, config["loss"], config["log"],
+                                       grid=detector.anchor_grid)
+        optimizer.zero_grad(set_to_none=True)
+        streams.total.backward()
+        if clip > 0:
+            torch.nn.utils.clip_grad_norm_(detector.parameters(), clip)
+        optimizer.step()
+
+    return step
+
+
+def measure_step_seconds(config: dict[str, Any], num_classes: int, image_size: int, boxes_per_image: int = 1) -> float:
+    """Seconds per training step of the detector (:func:`detector_step` at ``train.precision``), the typical of
+    :data:`TIMED_STEPS` steps after one warm-up (:func:`time_calls`), with the thread count training will use."""
     with _timing_threads(config):
-        batch = int(config["train"]["batch_size"])
-        detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size)
-        optimizer = torch.optim.AdamW(detector.parameters(), lr=1e-4)
-        images = torch.rand(batch, 3, image_size, image_size).contiguous(memory_format=torch.channels_last)
-        count = max(1, int(boxes_per_image))
-        corner = torch.rand(batch, count, 2) * image_size * 0.8
-        extent = 8 + torch.rand(batch, count, 2) * image_size / 6
-        xyxy = torch.cat([corner, (corner + extent).clamp(max=image_size)], dim=2)
-        targets = [{"boxes": xyxy[b], "labels": torch.randint(0, max(1, num_classes), (count,))} for b in range(batch)]
+        return time_calls(detector_step(config, num_classes, image_size, boxes_per_image))[0]
 
-        def detector_step() -> None:
-            streams = compute_loss_streams(detector(images), detector.anchors, targets, config["loss"], config["log"],
-                                           grid=detector.anchor_grid)
-            optimizer.zero_grad()
-            streams.total.backward()
-            optimizer.step()
 
-        return time_calls(detector_step)[0]
+def choose_detector_precision(config: dict[str, Any], num_classes: int, image_size: int,
+                              boxes_per_image: int = 1) -> tuple[str, str, float]:
+    """``train.precision`` for ``auto``: bfloat16 when a detector training step (:func:`detector_step`) at
+    ``image_size`` is timed at least :data:`BF16_MIN_SPEEDUP` times faster than float32's on this machine; with the
+    reason and the chosen step's seconds (the budget's first timing)."""
+    with _timing_threads(config):
+        f32, bf16 = time_calls(detector_step(config, num_classes, image_size, boxes_per_image, "float32"),
+                               detector_step(config, num_classes, image_size, boxes_per_image, "bfloat16"))
+    choice, reason = _precision_choice("a detector training step", f32, bf16)
+    return choice, reason, bf16 if choice == "bfloat16" else f32
+
+
+def _precision_choice(what: str, f32: float, bf16: float) -> tuple[str, str]:
+    speedup = f32 / max(bf16, 1e-9)
+    choice = "bfloat16" if speedup >= BF16_MIN_SPEEDUP else "float32"
+    return choice, (f"{choice}: {what} takes {f32:.3f} s in float32 and {bf16:.3f} s in bfloat16 on this machine "
+                    f"({speedup:.2f}x; bfloat16 from {BF16_MIN_SPEEDUP}x)")
 
 
 def measure_crop_seconds(config: dict[str, Any], num_classes: int) -> tuple[float, float]:
@@ -273,10 +307,7 @@ def choose_crop_precision(config: dict[str, Any], num_classes: int) -> tuple[str
         rows = CropRows.random(num_classes, int(cfg["input_size"]))
         f32, bf16 = time_calls(crop_work(rows, num_classes, cfg, flips, "float32").step,
                            crop_work(rows, num_classes, cfg, flips, "bfloat16").step, repeats=2 * TIMED_STEPS)
-    speedup = f32 / max(bf16, 1e-9)
-    choice = "bfloat16" if speedup >= BF16_MIN_SPEEDUP else "float32"
-    return choice, (f"{choice}: a crop-model training step takes {f32:.3f} s in float32 and {bf16:.3f} s in "
-                    f"bfloat16 on this machine ({speedup:.2f}x; bfloat16 from {BF16_MIN_SPEEDUP}x)")
+    return _precision_choice("a crop-model training step", f32, bf16)
 
 
 def time_calls(*steps, repeats: int = TIMED_STEPS) -> tuple[float, ...]:
@@ -327,8 +358,21 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
         recipe.reasons["crossfit.epochs"] = (f"{config['crossfit']['epochs']}: {cfg['crop_epochs_at_4000']} x "
                                              f"(4000 / {boxes} boxes)^{power:g}, within {cfg['min_crop_epochs']}-"
                                              f"{cfg['max_crop_epochs']}")
-    from detdiff.crossfit.crop_model import PRECISIONS
+    from detdiff.model.precision import PRECISIONS
 
+    speeds: dict[int, float] = {}                  # seconds per detector step, timed per view size
+    precision = config["train"].get("precision", AUTO)
+    if precision not in PRECISIONS:
+        raise ConfigError(f"train.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
+    if _is_auto(precision):
+        if measure and dataset.num_classes and boxes:
+            size = int(config["data"]["image_size"])
+            precision, reason, speeds[size] = choose_detector_precision(
+                _with_anchors(config, dataset), dataset.num_classes, size, math.ceil(boxes / max(images, 1)))
+        else:
+            precision = "float32"
+            reason = "float32: no timed steps (auto picks bfloat16 only where it is timed faster)"
+        config["train"]["precision"], recipe.reasons["train.precision"] = precision, reason
     precision = config["crossfit"].get("precision", AUTO)
     if precision not in PRECISIONS:
         raise ConfigError(f"crossfit.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
@@ -340,7 +384,7 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
             reason = "float32: no timed steps (auto picks bfloat16 only where it is timed faster)"
         config["crossfit"]["precision"], recipe.reasons["crossfit.precision"] = precision, reason
     if measure and dataset.num_classes and boxes:
-        _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop, auto_tiles)
+        _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop, auto_tiles, speeds)
     elif auto_tiles:
         config["data"]["tile_scale"] = float(cfg["max_tile_scale"])
         recipe.reasons["data.tile_scale"] = f"{cfg['max_tile_scale']}: recipe.max_tile_scale (no time budget fitted)"
@@ -351,8 +395,8 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
         _say_small_objects(dataset, config, recipe)
     if _is_auto(config["data"].get("cache_codec", AUTO)):
         config["data"]["cache_codec"], recipe.reasons["data.cache_codec"] = choose_cache_codec(dataset, config)
-    for key in ("data.image_size", "data.tile_scale", "data.cache_codec", "train.epochs", "crossfit.epochs",
-                "crossfit.precision", "model.anchor_shapes"):
+    for key in ("data.image_size", "data.tile_scale", "data.cache_codec", "train.epochs", "train.precision",
+                "crossfit.epochs", "crossfit.precision", "model.anchor_shapes"):
         section, name = key.split(".")
         recipe.settings[key] = config[section][name]
         recipe.reasons.setdefault(key, "given in the config or on the command line")
@@ -433,9 +477,10 @@ def _say_small_objects(dataset: CocoDataset, config: dict[str, Any], recipe: Rec
 
 
 def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, images: int, boxes: int,
-                auto_view: bool, auto_epochs: bool, auto_crop: bool, auto_tiles: bool) -> None:
+                auto_view: bool, auto_epochs: bool, auto_crop: bool, auto_tiles: bool,
+                speeds: dict[int, float]) -> None:
     """Shrink the ``auto`` settings until the estimated training fits the budget, then spend what is left on tiles or
-    a larger view (module docstring)."""
+    a larger view (module docstring). ``speeds``: seconds per detector step already timed, by view size."""
     cfg, train, crossfit, data = config["recipe"], config["train"], config["crossfit"], config["data"]
     tiled = tiled_image_share(dataset, _largest_view(dataset, cfg), cfg) if auto_tiles else 0.0
     budget = budget_seconds(cfg, images, tiled, boxes)
@@ -445,7 +490,6 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
         recipe.notes.append(f"budget {budget / 60:.1f} min: {cfg['seconds_per_image']} s per image{tiles}, + "
                             f"{cfg.get('seconds_per_box', 0)} s per box (--budget MINUTES)")
     folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])
-    speeds: dict[int, float] = {}                  # seconds per detector step, timed per view size
     per_image = math.ceil(boxes / max(images, 1))
     target = float(cfg["min_object_px"])
     if auto_tiles:
@@ -461,7 +505,8 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
         timed = min(speeds, key=lambda s: abs(s - size))
         return int(train["epochs"]) * math.ceil(views["count"] / batch) * speeds[timed] * (size / timed) ** 2
 
-    measure(int(data["image_size"]))
+    if int(data["image_size"]) not in speeds:
+        measure(int(data["image_size"]))
     crop_s = 0.0
     if crossfit["enabled"]:
         step_s, predict_s = measure_crop_seconds(config, dataset.num_classes)

@@ -210,3 +210,23 @@ def test_detector_learns_simple_objects(one_thread) -> None:
         obj = compute_loss_streams(model(images), model.anchors, targets, CI["loss"], CI["log"]).objects
     assert obj["pred_iou"].median() > 0.6
     assert obj["detected"].float().mean() > 0.7
+
+
+def test_bfloat16_training_pass_keeps_float32_outputs_and_eval_stays_float32() -> None:
+    # torch.autocast reference: bfloat16 has 8 significant bits (torch.finfo(torch.bfloat16).eps = 2**-7); through
+    # the backbone, neck and head tower the logits stay within a few such steps of the float32 pass, and the
+    # predictor's outputs are float32 (the loss streams are computed from them).
+    torch.manual_seed(0)
+    exact = Detector(3, 64, width=8, head_width=16)
+    rounded = Detector(3, 64, width=8, head_width=16, precision="bfloat16")
+    rounded.load_state_dict(exact.state_dict())
+    images = torch.rand(2, 3, 64, 64).contiguous(memory_format=torch.channels_last)
+    want = exact.train()(images)["cls_logits"]
+    got = rounded.train()(images)["cls_logits"]
+    assert got.dtype == torch.float32
+    assert (got - want).abs().max() <= 16 * torch.finfo(torch.bfloat16).eps * want.abs().max()
+    assert not torch.equal(got, want)
+    with torch.no_grad():
+        torch.testing.assert_close(rounded.eval()(images)["cls_logits"], exact.eval()(images)["cls_logits"])
+    with pytest.raises(ValueError, match="train.precision"):
+        Detector(3, 64, precision="half")

@@ -288,3 +288,16 @@ def test_streams_with_the_anchor_grid_equal_streams_without(kind: str, min_ancho
     for part in ("image", "objects", "unmatched"):
         a, b = getattr(full, part), getattr(near, part)
         assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a), part
+
+
+def test_hard_negative_mining_matches_torch_bce_at_extreme_logits() -> None:
+    # The mining ranks background anchors by relu(x) + log(1 + exp(-|x|)), not by torch's BCE itself; at logits
+    # of +-100 (float32's exp overflows at 89) the mined losses must still equal the per-image reference of
+    # torch.nn.functional.binary_cross_entropy_with_logits with topk.
+    outputs, targets = make_batch([3, 0, 5, 1], seed=2, logit_scale=40.0)
+    cfg = loss_cfg(classification="hard_negative")
+    streams = compute_loss_streams(outputs, ANCHORS, targets, cfg, LOG_CFG)
+    reference = reference_image_streams(outputs, targets, cfg).detach()
+    ours = torch.stack([streams.image[k] for k in ("loc_sum", "pos_sum", "neg_sum")], 1)
+    assert outputs["cls_logits"].abs().max() > 100
+    torch.testing.assert_close(ours, reference, rtol=1e-5, atol=1e-4)

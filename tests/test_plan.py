@@ -93,6 +93,27 @@ def test_plan_contents(demo, tmp_path):
     assert again.to_json() == json.loads((rundir / PLAN_FILE).read_text()) == plan.to_json()
 
 
+def test_warmup_times_detector_steps_without_saved_tensor_hooks(demo, tmp_path):
+    # A saved-tensor hook (torch.autograd.graph.saved_tensors_hooks), even one that returns its tensor unchanged,
+    # doubled a bfloat16 training step (measured on a streetcam sample: 0.31 s against 0.16 s): the warm-up measures
+    # what a step keeps on one untimed step and times the others without a hook.
+    import torch
+
+    real = torch.autograd.graph.saved_tensors_hooks
+    entered = []
+
+    def counting(*args, **kwargs):
+        entered.append(1)
+        return real(*args, **kwargs)
+
+    rundir = tmp_path / "run"
+    rundir.mkdir()
+    with mock.patch.object(torch.autograd.graph, "saved_tensors_hooks", counting):
+        plan = plan_audit(demo.dataset, demo.config, demo.recipe, rundir)
+    assert len(entered) == 1
+    assert plan.warmup["activation_bytes"] > 0 and plan.warmup["detector_step_s"] > 0
+
+
 def test_plan_counts_a_built_cache_as_there(demo, tmp_path):
     rundir = tmp_path / "run"
     build_image_cache(demo.dataset, rundir / "cache", SIZE, progress=False, workers=1, **cache_options(demo.config))

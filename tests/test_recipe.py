@@ -69,21 +69,25 @@ def test_fit_recipe_resolves_auto_and_keeps_explicit_values() -> None:
     kept, recipe2 = fit_recipe(ds, explicit, measure=False)
     assert kept["data"]["image_size"] == 224 and kept["train"]["epochs"] == 5
     assert recipe2.reasons["train.epochs"].startswith("given")
-    assert resolved["crossfit"]["precision"] == "float32"            # auto without timed steps
-    assert recipe.reasons["crossfit.precision"].startswith("float32: no timed steps")
+    for key in ("crossfit.precision", "train.precision"):
+        section, name = key.split(".")
+        assert resolved[section][name] == "float32"                   # auto without timed steps
+        assert recipe.reasons[key].startswith("float32: no timed steps")
 
 
-def test_crop_precision_is_timed_and_bad_values_are_refused() -> None:
+@pytest.mark.parametrize("key", ["crossfit.precision", "train.precision"])
+def test_precision_is_timed_and_bad_values_are_refused(key: str) -> None:
+    section, name = key.split(".")
     ds = _dataset(np.random.default_rng(6).uniform(15, 80, (200, 2)))
     config = load_config(overrides={"recipe": {"budget_minutes": 1}})
     resolved, recipe = fit_recipe(ds, config, measure=True)
-    chosen, reason = resolved["crossfit"]["precision"], recipe.reasons["crossfit.precision"]
+    chosen, reason = resolved[section][name], recipe.reasons[key]
     assert chosen in ("float32", "bfloat16") and reason.startswith(chosen) and "x;" in reason
-    assert recipe.settings["crossfit.precision"] == chosen
-    kept, _ = fit_recipe(ds, load_config(overrides={"crossfit": {"precision": "bfloat16"}}), measure=False)
-    assert kept["crossfit"]["precision"] == "bfloat16"
-    with pytest.raises(ConfigError, match="crossfit.precision must be one of auto, float32, bfloat16"):
-        fit_recipe(ds, load_config(overrides={"crossfit": {"precision": "fp16"}}), measure=False)
+    assert recipe.settings[key] == chosen
+    kept, _ = fit_recipe(ds, load_config(overrides={section: {name: "bfloat16"}}), measure=False)
+    assert kept[section][name] == "bfloat16"
+    with pytest.raises(ConfigError, match=f"{key} must be one of auto, float32, bfloat16"):
+        fit_recipe(ds, load_config(overrides={section: {name: "fp16"}}), measure=False)
 
 
 def test_auto_budget_counts_images_their_tiles_and_boxes() -> None:

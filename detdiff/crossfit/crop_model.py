@@ -42,6 +42,8 @@ import torch.nn.functional as F
 from torch import nn
 from torchvision.ops import roi_align
 
+from detdiff.model.precision import training_autocast as precision_autocast
+
 #: Window side in units of the annotated box (the box fills the middle half).
 WINDOW = 2.0
 #: Training jitter of the window: centre shift up to this share of the box side, per axis...
@@ -59,8 +61,6 @@ BACKGROUND_SHARE = 0.25
 BACKGROUND_MAX_IOU = 0.2
 #: Candidate background boxes drawn per window (the first that fits is kept).
 BACKGROUND_TRIES = 8
-#: ``crossfit.precision`` values; ``auto`` is resolved by the recipe, and reads as float32 where it was not.
-PRECISIONS = ("auto", "float32", "bfloat16")
 
 
 def conv_bn_relu(cin: int, cout: int, stride: int) -> nn.Sequential:
@@ -95,9 +95,7 @@ class CropModel(nn.Module):
 
 def training_autocast(precision: str) -> torch.autocast:
     """The autocast context of a crop-model training forward pass at ``crossfit.precision`` (module docstring)."""
-    if precision not in PRECISIONS:
-        raise ValueError(f"crossfit.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
-    return torch.autocast("cpu", dtype=torch.bfloat16, enabled=precision == "bfloat16")
+    return precision_autocast(precision, "crossfit.precision")
 
 
 def centred_windows(n: int) -> np.ndarray:

@@ -16,6 +16,11 @@ step, a 3x3 predictor ~15%, a second 3x3 conv at stride 8 ~20%, a 3x3 instead of
 stride 8 ~8% (neither improved learning on the demo scenario), and six anchors per location instead of
 three ~35% (the loss is per anchor).
 
+Precision (``train.precision``, resolved by the recipe from steps timed both ways on this machine): in training
+mode the forward pass may run in bfloat16 (:mod:`detdiff.model.precision`); the 1x1 predictor always runs in
+float32, so the logits and offsets the loss streams are computed from keep float32's resolution. Eval mode (the
+final pass and the evaluation) is float32.
+
 Inputs are ``float [B, 3, S, S]`` in ``0..1`` (normalised inside the model); outputs follow the anchor order of
 :func:`detdiff.model.anchors.make_anchors`.
 """
@@ -34,6 +39,7 @@ from torch import nn
 import torch.nn.functional as F
 
 from detdiff.model.anchors import anchor_grid
+from detdiff.model.precision import training_autocast
 
 log = logging.getLogger(__name__)
 
@@ -135,7 +141,9 @@ class Head(nn.Module):
         """``[B, N, C]`` logits and ``[B, N, 4]`` offsets, levels concatenated in anchor order."""
         logits, deltas = [], []
         for f in feats:
-            p = self.predictor(self.tower(f))                            # [B, A*(C+4), H, W]
+            tower = self.tower(f)
+            with torch.autocast(f.device.type, enabled=False):           # float32 whatever the pass's precision
+                p = self.predictor(tower.float())                        # [B, A*(C+4), H, W]
             b, _, h, w = p.shape
             p = p.permute(0, 2, 3, 1).reshape(b, h * w * self.num_anchors, self.num_classes + 4)
             logits.append(p[..., :self.num_classes])
@@ -154,8 +162,11 @@ class Detector(nn.Module):
                  head_depth: int = 1, strides: Sequence[int] = (8, 16, 32),
                  anchor_sizes: Sequence[float] = (20, 40, 80), anchor_scales: Sequence[float] = (0.5, 1.0, 1.6),
                  anchor_ratios: Sequence[float] = (1.0,),
-                 anchor_shapes: Sequence[Sequence[Sequence[float]]] | None = None) -> None:
+                 anchor_shapes: Sequence[Sequence[Sequence[float]]] | None = None,
+                 precision: str = "float32") -> None:
         super().__init__()
+        training_autocast(precision, "train.precision")                  # checks the value
+        self.precision = precision
         if num_classes < 1:
             raise ValueError(f"num_classes must be >= 1, got {num_classes}")
         self.num_classes, self.image_size = int(num_classes), int(image_size)
@@ -174,15 +185,17 @@ class Detector(nn.Module):
         self.to(memory_format=torch.channels_last)
 
     @classmethod
-    def from_config(cls, model_cfg: dict[str, Any], num_classes: int, image_size: int) -> Detector:
-        """Build from ``config['model']``; loads ``model_cfg['weights']`` when it names a local file."""
+    def from_config(cls, model_cfg: dict[str, Any], num_classes: int, image_size: int,
+                    precision: str = "float32") -> Detector:
+        """Build from ``config['model']`` (training forward at ``precision``: ``config['train']['precision']``);
+        loads ``model_cfg['weights']`` when it names a local file."""
         keys = ("width", "head_width", "head_depth", "strides", "anchor_sizes", "anchor_scales", "anchor_ratios")
         missing = [k for k in keys if k not in model_cfg]
         if missing:
             raise ValueError(f"config 'model' section lacks key(s) {missing}")
         shapes = model_cfg.get("anchor_shapes")
         model = cls(num_classes, image_size, **{k: model_cfg[k] for k in keys},
-                    anchor_shapes=shapes if isinstance(shapes, list) else None)
+                    anchor_shapes=shapes if isinstance(shapes, list) else None, precision=precision)
         if model_cfg.get("weights"):
             model.load_weights(model_cfg["weights"])
         return model
@@ -196,8 +209,10 @@ class Detector(nn.Module):
                 or images.shape[-2] != self.image_size:
             raise ValueError(f"Detector expects images [B, 3, {self.image_size}, {self.image_size}], "
                              f"got {list(images.shape)}")
-        features = self.neck(self.backbone(images))                     # the stem normalises (x - 0.5) * 4
-        cls_logits, box_deltas = self.head(features)
+        with training_autocast(self.precision if self.training else "float32", "train.precision",
+                               images.device.type):
+            features = self.neck(self.backbone(images))                 # the stem normalises (x - 0.5) * 4
+            cls_logits, box_deltas = self.head(features)
         return {"cls_logits": cls_logits, "box_deltas": box_deltas, "features": features}
 
     def load_weights(self, path: str | Path) -> tuple[list[str], list[str]]:

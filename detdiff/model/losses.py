@@ -98,6 +98,27 @@ def classification_loss(logits: torch.Tensor, target: torch.Tensor, loss_cfg: di
     raise ValueError(f"loss.classification: expected 'focal' or 'hard_negative', got {kind!r}")
 
 
+def _mined_negatives(logits: torch.Tensor, background: torch.Tensor, num_mined: torch.Tensor) -> torch.Tensor:
+    """Flat ``image * N + anchor`` indices of each image's ``num_mined [B]`` background anchors of highest loss
+    (SSD's hard negative mining).
+
+    Only the ranking looks at every anchor, without gradient, with the cross-entropy against "no class" written as
+    ``relu(x) + log(1 + exp(-|x|))``: the same function as :func:`torch.nn.functional.binary_cross_entropy_with_logits`
+    at target 0 (relative difference under 1e-5: tests/test_losses.py), at a fifth of its time on CPU, where
+    ``log1p`` is not vectorised (measured over 16 x 16,128 anchors x 24 classes: 35 ms -> 8 ms). The loss is then
+    taken with torch's function and with gradient on the mined anchors only."""
+    with torch.no_grad():
+        magnitude = logits.abs()                                      # one B x N x C buffer, then in place
+        relu_sum = (logits.sum(-1) + magnitude.sum(-1)) / 2           # sum of relu(x) = (x + |x|) / 2
+        ranked = magnitude.neg_().exp_().add_(1.0).log_().sum(-1) + relu_sum
+        ranked = ranked.masked_fill_(~background, -1.0)
+        top = min(ranked.shape[1], int(num_mined.max()))
+        order = ranked.topk(top, dim=1).indices                                                   # [B, top]
+        keep = (torch.arange(top, device=logits.device)[None, :] < num_mined[:, None]) & background.gather(1, order)
+        neg_b, neg_k = keep.nonzero(as_tuple=True)
+    return neg_b * logits.shape[1] + order[neg_b, neg_k]
+
+
 def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets: list[dict[str, torch.Tensor]],
                          loss_cfg: dict[str, Any], log_cfg: dict[str, Any], *, per_item: bool = True,
                          grid: AnchorGrid | None = None) -> LossStreams:
@@ -153,23 +174,23 @@ def compute_loss_streams(outputs: dict[str, Any], anchors: torch.Tensor, targets
                                      loss_cfg)                                                    # [P]
 
     # Classification, per anchor and class, then summed over classes.
-    cls_target = torch.zeros_like(logits)
-    cls_target[pos_b, pos_n, gt_labels[pos_obj]] = 1.0
-    cls_anchor = classification_loss(logits, cls_target, loss_cfg)                                # [B, N]
-    if loss_cfg["classification"] == "focal":
-        negatives = background
-    else:
-        ranked = cls_anchor.detach().masked_fill(~background, -1.0)
-        order = ranked.argsort(dim=1, descending=True)
-        num_mined = loss_cfg["neg_pos_ratio"] * num_pos.clamp(min=1)     # >= 3 even without positives
-        keep_sorted = torch.arange(num_anchors, device=device)[None, :] < num_mined[:, None]
-        negatives = torch.zeros_like(background).scatter_(1, order, keep_sorted) & background
-    pos_anchor = cls_anchor[pos_b, pos_n]                                                         # [P]
-
     zeros = torch.zeros(batch, device=device, dtype=logits.dtype)
+    if loss_cfg["classification"] == "focal":
+        cls_target = torch.zeros_like(logits)
+        cls_target[pos_b, pos_n, gt_labels[pos_obj]] = 1.0
+        cls_anchor = classification_loss(logits, cls_target, loss_cfg)                            # [B, N]
+        pos_anchor = cls_anchor[pos_b, pos_n]                                                     # [P]
+        neg_sum = (cls_anchor * background).sum(1)
+    else:
+        pos_target = F.one_hot(gt_labels[pos_obj], num_classes).to(logits.dtype)
+        pos_anchor = classification_loss(logits[pos_b, pos_n], pos_target, loss_cfg)            # [P]
+        mined = _mined_negatives(logits, background, loss_cfg["neg_pos_ratio"] * num_pos.clamp(min=1))
+        mined_logits = logits.reshape(-1, num_classes).index_select(0, mined)                   # [M, C]
+        neg_anchor = classification_loss(mined_logits, torch.zeros_like(mined_logits), loss_cfg)
+        neg_sum = zeros.index_add(0, mined // num_anchors, neg_anchor)
+
     loc_sum = zeros.index_add(0, pos_b, loc_anchor)
     pos_sum = zeros.index_add(0, pos_b, pos_anchor)
-    neg_sum = (cls_anchor * negatives).sum(1)
     total = ((loc_sum + pos_sum + neg_sum) / num_pos.clamp(min=1)).mean()
     image = {"loc_sum": loc_sum.detach(), "pos_sum": pos_sum.detach(), "neg_sum": neg_sum.detach(),
              "num_pos": num_pos}

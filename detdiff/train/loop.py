@@ -198,7 +198,8 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
     seed, epochs, batch_size = int(train_cfg["seed"]), int(train_cfg["epochs"]), int(train_cfg["batch_size"])
     torch.manual_seed(seed)
     np.random.seed(seed)
-    model = Detector.from_config(config["model"], dataset.num_classes, cache.image_size)
+    model = Detector.from_config(config["model"], dataset.num_classes, cache.image_size,
+                                 precision=str(train_cfg.get("precision", "float32")))
     check_room_on_main(rundir, log_bytes(dataset, config) + checkpoint_bytes(model), info)
     ckpt_path, log_dir = rundir / CHECKPOINT_FILE, rundir / LOG_DIR
     model = model.to(info.device)

@@ -11,7 +11,8 @@
    (goal: ratio >= 6; ours alone: >= 100 img/s at 256 px, batch 16, 2 threads);
 6. dense images (``DENSE_OBJECTS`` boxes of 3-40 px per image at 512 px, as aerial views and their tiles): the
    loss streams with anchors matched near each box (``grid=``, the training path) against every anchor compared
-   with every box (the full IoU matrix; the same matching), and whole training steps both ways.
+   with every box (the full IoU matrix; the same matching), and whole training steps both ways;
+7. ``train.precision``: a training step at 512 px in float32 and in bfloat16 (``torch.autocast``), side by side.
 
 A/B timings are interleaved (A, B, A, B, ...) so that load from other processes hits both; each figure is a
 median over rounds after warm-up (overhead ratios: the median of the per-round ratios). Run: ``.venv/bin/python tests/benchmarks/bench_detector.py [--quick]``.
@@ -91,10 +92,11 @@ def paired_ratio(steps: dict[str, Callable[[], object]], warmup: int, rounds: in
 class OursTrainer:
     """One training step of the default detector: forward, loss streams, backward, AdamW step."""
 
-    def __init__(self, config: dict, size: int, batch: int, seed: int = 0, **boxes) -> None:
+    def __init__(self, config: dict, size: int, batch: int, seed: int = 0, precision: str = "float32",
+                 **boxes) -> None:
         torch.manual_seed(seed)
         self.config = config
-        self.model = Detector.from_config(config["model"], NUM_CLASSES, size)
+        self.model = Detector.from_config(config["model"], NUM_CLASSES, size, precision=precision)
         self.optimizer = torch.optim.AdamW(self.model.parameters(), lr=1e-3)
         self.images, self.targets = synthetic_batch(batch, size, seed, **boxes)
 
@@ -263,6 +265,14 @@ def main(argv: list[str] | None = None) -> int:
                     max(3, rounds // 2))
     rows.append(("training step, same batch: every anchor / near each box",
                  f"{t['every']:.3f} / {t['near']:.3f} s = {t['every'] / t['near']:.1f}x", ""))
+
+    # (7) train.precision: the same dense training step in float32 and in bfloat16 (torch.autocast), interleaved
+    steps = {p: OursTrainer(config, DENSE_SIZE, batch, precision=p, objects=DENSE_OBJECTS // 4,
+                            sides=(3 / DENSE_SIZE, 40 / DENSE_SIZE)) for p in ("float32", "bfloat16")}
+    t = interleaved({p: lambda p=p: steps[p].step(True) for p in steps}, 1, max(3, rounds // 2))
+    rows.append((f"training step at {DENSE_SIZE} px, {DENSE_OBJECTS // 4} boxes/img: float32 / bfloat16",
+                 f"{t['float32']:.3f} / {t['bfloat16']:.3f} s = {t['float32'] / t['bfloat16']:.2f}x",
+                 "train.precision auto: bfloat16 from 1.15x"))
 
     width = max(len(r[0]) for r in rows)
     print(f"detector benchmark: {args.threads} threads, torch {torch.__version__}, batch {batch}")

@@ -4,7 +4,8 @@ Both models of the audit (the detector: ``train.precision``; the crop models: ``
 their training forward pass in bfloat16: convolutions and linear layers take bfloat16 inputs and weights
 (8 significant bits), while the weights themselves, the optimizer and the loss stay float32. ``auto`` is
 resolved by the recipe from steps timed both ways on this machine (:mod:`detdiff.recipe`): CPUs with
-AVX512-BF16 run the detector's step about 1.7x faster, others may run it slower. Predictions are float32.
+AVX512-BF16 ran the detector's 512 px step 1.4-1.6x faster in the recipe's timings and 1.9x in
+``tests/benchmarks/bench_detector.py``; others may run it slower. Predictions are float32.
 """
 
 from __future__ import annotations

@@ -266,6 +266,20 @@ def choose_detector_precision(config: dict[str, Any], num_classes: int, image_si
     return choice, reason, bf16 if choice == "bfloat16" else f32
 
 
+def _resolve_precision(config: dict[str, Any], recipe: Recipe, section: str,
+                       choose: Callable[[], tuple[str, str]] | None) -> None:
+    """Check ``section.precision`` and resolve ``auto`` by ``choose()`` (timed steps; float32 without one)."""
+    from detdiff.model.precision import PRECISIONS
+
+    precision = config[section].get("precision", AUTO)
+    if precision not in PRECISIONS:
+        raise ConfigError(f"{section}.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
+    if _is_auto(precision):
+        precision, reason = choose() if choose is not None else (
+            "float32", "float32: no timed steps (auto picks bfloat16 only where it is timed faster)")
+        config[section]["precision"], recipe.reasons[f"{section}.precision"] = precision, reason
+
+
 def _precision_choice(what: str, f32: float, bf16: float) -> tuple[str, str]:
     speedup = f32 / max(bf16, 1e-9)
     choice = "bfloat16" if speedup >= BF16_MIN_SPEEDUP else "float32"
@@ -358,31 +372,18 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
         recipe.reasons["crossfit.epochs"] = (f"{config['crossfit']['epochs']}: {cfg['crop_epochs_at_4000']} x "
                                              f"(4000 / {boxes} boxes)^{power:g}, within {cfg['min_crop_epochs']}-"
                                              f"{cfg['max_crop_epochs']}")
-    from detdiff.model.precision import PRECISIONS
-
     speeds: dict[int, float] = {}                  # seconds per detector step, timed per view size
-    precision = config["train"].get("precision", AUTO)
-    if precision not in PRECISIONS:
-        raise ConfigError(f"train.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
-    if _is_auto(precision):
-        if measure and dataset.num_classes and boxes:
-            size = int(config["data"]["image_size"])
-            precision, reason, speeds[size] = choose_detector_precision(
-                _with_anchors(config, dataset), dataset.num_classes, size, math.ceil(boxes / max(images, 1)))
-        else:
-            precision = "float32"
-            reason = "float32: no timed steps (auto picks bfloat16 only where it is timed faster)"
-        config["train"]["precision"], recipe.reasons["train.precision"] = precision, reason
-    precision = config["crossfit"].get("precision", AUTO)
-    if precision not in PRECISIONS:
-        raise ConfigError(f"crossfit.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
-    if _is_auto(precision):
-        if measure and dataset.num_classes and config["crossfit"]["enabled"]:
-            precision, reason = choose_crop_precision(config, dataset.num_classes)
-        else:
-            precision = "float32"
-            reason = "float32: no timed steps (auto picks bfloat16 only where it is timed faster)"
-        config["crossfit"]["precision"], recipe.reasons["crossfit.precision"] = precision, reason
+
+    def time_detector() -> tuple[str, str]:
+        size = int(config["data"]["image_size"])
+        choice, reason, speeds[size] = choose_detector_precision(
+            _with_anchors(config, dataset), dataset.num_classes, size, math.ceil(boxes / max(images, 1)))
+        return choice, reason
+
+    timed = measure and bool(dataset.num_classes)
+    _resolve_precision(config, recipe, "train", time_detector if timed and boxes else None)
+    _resolve_precision(config, recipe, "crossfit", (lambda: choose_crop_precision(config, dataset.num_classes))
+                       if timed and config["crossfit"]["enabled"] else None)
     if measure and dataset.num_classes and boxes:
         _fit_budget(dataset, config, recipe, images, boxes, auto_view, auto_epochs, auto_crop, auto_tiles, speeds)
     elif auto_tiles:

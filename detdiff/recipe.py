@@ -29,8 +29,8 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
   budget).
 * **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image plus
   ``recipe.seconds_per_box`` per box, at least ``recipe.min_budget_minutes``: :func:`budget_seconds`; ``--budget``
-  on the command line) bounds the training time, estimated from timed steps on this machine: the detector's
-  (:func:`measure_step_seconds`) and a crop model's step and prediction as a fold does them
+  on the command line) bounds the training time, estimated from timed steps on this machine: the detector's on
+  ``train.device`` (:func:`measure_step_seconds`; a GPU's step, where training runs on one) and a crop model's step and prediction as a fold does them
   (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS` calls. Until the crop step was timed with
   its resampling, on rows drawn from a large store, with the predictions counted and the median taken, the crop
   estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up to 1.32x their budget. The
@@ -217,22 +217,26 @@ def detector_step(config: dict[str, Any], num_classes: int, image_size: int, box
                   precision: str | None = None) -> Callable[[], None]:
     """One training step of the detector (batch ``train.batch_size`` at ``image_size``, each image with
     ``boxes_per_image`` random boxes: matching and the per-object streams grow with them) on random data, at
-    ``precision`` (default ``train.precision``), as a callable for :func:`time_calls`."""
+    ``precision`` (default ``train.precision``), on the device training will use (``train.device``: a GPU run
+    gets a recipe sized to the GPU's step, not to the CPU's), as a callable for :func:`time_calls`."""
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
+    from detdiff.train.distributed import resolve_device
 
+    device = resolve_device(str(config["train"].get("device", "cpu")))
     batch = int(config["train"]["batch_size"])
     precision = str(config["train"].get("precision", "float32")) if precision is None else precision
     detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size,
-                                    precision="float32" if _is_auto(precision) else precision)
+                                    precision="float32" if _is_auto(precision) else precision).to(device)
     optimizer = torch.optim.AdamW(detector.parameters(), lr=1e-4)
-    pixels = torch.randint(0, 256, (batch, image_size, image_size, 3), dtype=torch.uint8)
+    pixels = torch.randint(0, 256, (batch, image_size, image_size, 3), dtype=torch.uint8, device=device)
     clip = float(config["train"].get("grad_clip") or 0.0)
     count = max(1, int(boxes_per_image))
     corner = torch.rand(batch, count, 2) * image_size * 0.8
     extent = 8 + torch.rand(batch, count, 2) * image_size / 6
-    xyxy = torch.cat([corner, (corner + extent).clamp(max=image_size)], dim=2)
-    targets = [{"boxes": xyxy[b], "labels": torch.randint(0, max(1, num_classes), (count,))} for b in range(batch)]
+    xyxy = torch.cat([corner, (corner + extent).clamp(max=image_size)], dim=2).to(device)
+    targets = [{"boxes": xyxy[b], "labels": torch.randint(0, max(1, num_classes), (count,), device=device)}
+               for b in range(batch)]
 
     def step() -> None:                            # as the training loop takes it, from uint8 pixels
         images = pixels.permute(0, 3, 1, 2).float().div_(255.0)
@@ -243,6 +247,8 @@ def detector_step(config: dict[str, Any], num_classes: int, image_size: int, box
         if clip > 0:
             torch.nn.utils.clip_grad_norm_(detector.parameters(), clip)
         optimizer.step()
+        if device.type == "cuda":                  # kernels run asynchronously: the step ends when they do
+            torch.cuda.synchronize(device)
 
     return step
 

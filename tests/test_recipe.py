@@ -161,3 +161,23 @@ def test_tiles_for_small_boxes_fit_the_budget_before_epochs() -> None:
     assert any(t.startswith("data.tile_scale") for t in recipe.traded), recipe.traded
     if cap == 0:
         assert any("too small" in n and "--budget" in n for n in recipe.notes), recipe.notes
+
+
+def test_detector_step_is_timed_on_the_training_device(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The recipe sizes the detector's work to the device training uses: ``train.device`` is resolved the way the
+    training loop resolves it, and a CUDA device that is not there is refused by name."""
+    import torch
+
+    from detdiff.recipe import detector_step
+    from detdiff.train import distributed
+
+    asked: list[str] = []
+    resolve = distributed.resolve_device
+    monkeypatch.setattr(distributed, "resolve_device", lambda device: asked.append(device) or resolve("cpu"))
+    config = load_config(overrides={"train": {"device": "auto", "batch_size": 2}})
+    detector_step(config, num_classes=2, image_size=64, boxes_per_image=2)()
+    assert asked == ["auto"]
+    monkeypatch.setattr(distributed, "resolve_device", resolve)
+    if not torch.cuda.is_available():
+        with pytest.raises(RuntimeError, match="train.device is 'cuda'"):
+            detector_step(load_config(overrides={"train": {"device": "cuda"}}), num_classes=2, image_size=64)

@@ -74,7 +74,11 @@ def score_against_truth(rundir: str | Path, truth_path: str | Path, seed: int = 
         if column in objects:
             planted = ids(kind)
             sub = objects[objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)]
-            out[kind]["auroc_evidence"] = auroc(sub[column].to_numpy(), sub["annotation_id"].isin(planted).to_numpy())
+            hits = sub["annotation_id"].isin(planted).to_numpy()
+            out[kind]["auroc_evidence"] = auroc(sub[column].to_numpy(), hits)
+            order = np.argsort(-np.nan_to_num(sub[column].to_numpy(np.float64), nan=-np.inf), kind="stable")
+            # the evidence's own ranking, uncut: against the list's precision_at_k it shows what the cut costs
+            out[kind]["precision_at_k_ranking"] = _precision_recall_at_k(hits[order], len(planted), len(planted))[0]
     if "class_freq" in objects:                            # class rarity alone: rarer = more suspicious
         planted = ids("wrong_class")
         sub = objects[objects["annotation_id"].isin(planted) | ~objects["annotation_id"].isin(faulty_ann)]

@@ -38,7 +38,8 @@ PLAN_RATIO = (0.75, 1.25)
 COLUMNS = [("planted", "planted", "{}"), ("evidence", "auroc_evidence", "{:.3f}"), ("stream", "auroc", "{:.3f}"),
            ("last ep", "auroc_last_epoch", "{:.3f}"), ("boxes", "auroc_box_count", "{:.3f}"),
            ("rarity", "auroc_rarity", "{:.3f}"), ("random", "auroc_random", "{:.3f}"),
-           ("P@k", "precision_at_k", "{:.3f}"), ("listed", "suspects", "{}"),
+           ("P@k", "precision_at_k", "{:.3f}"), ("P@k uncut", "precision_at_k_ranking", "{:.3f}"),
+           ("listed", "suspects", "{}"),
            ("list/planted", "list_to_planted", "{:.2f}"), ("list prec", "list_precision", "{:.3f}"),
            ("self AUROC", "self_auroc", "{:.3f}"), ("self prec", "self_expected_precision", "{:.3f}")]
 
@@ -73,8 +74,9 @@ def run_one(scenario: str, seed: int, num_images: int, out: Path, overrides: dic
 
 def print_run(result: dict) -> None:
     recipe = result["recipe"] or {}
+    small = result["AP50_small"]
     print(f"\n== {result['scenario']} seed {result['seed']}: {result['images']} images, audit {result['audit_s'] / 60:.1f} min,"
-          f" detector AP50 {result['AP50']:.3f} (small {result['AP50_small']}); view {recipe.get('data.image_size')},"
+          f" detector AP50 {result['AP50']:.3f} (small {'-' if small is None else f'{small:.3f}'}); view {recipe.get('data.image_size')},"
           f" epochs {recipe.get('train.epochs')}, crop epochs {recipe.get('crossfit.epochs')}")
     widths = [max(len(name) + 1, 7) for name, _, _ in COLUMNS]
     print(f"{'kind':<13}" + "".join(f"{name:>{w}}" for (name, _, _), w in zip(COLUMNS, widths)))

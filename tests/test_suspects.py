@@ -285,3 +285,14 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
     np.testing.assert_allclose(listable["score"], (np.nan_to_num(expected) + w * everything["score"]) / (1 + w))
     assert listable["evidence"].str.contains("sees an object there with probability").all()
     assert "detection of the trained detector matching no annotation" in listable["evidence"].iat[-1]
+    # the class to add is the crop model's where it judged the place (its own category id, non-contiguous), the
+    # detector's where it did not (the first place); the evidence names it
+    num_classes = ds.num_classes
+    probs = np.full((len(judged), num_classes), 0.1 / max(num_classes - 1, 1))
+    probs[:, num_classes - 1] = 0.9
+    prediction.place_probs = probs
+    classed, _ = judged_places(ds, seen_twice, final_only, prediction)
+    assert (classed["suggested_category_id"].iloc[1:] == ds.category_ids[-1]).all()
+    assert classed["suggested_category_id"].iat[0] == everything["suggested_category_id"].iat[0]
+    assert classed["evidence"].iloc[1:].str.contains(f"most like a '{ds.category_names[-1]}' \\(0.90\\)").all()
+    np.testing.assert_allclose(classed["score"], listable["score"])        # the class does not change the ranking

@@ -59,8 +59,9 @@ class CrossFitResult:
     the fold of the annotation's image; ``probe_rows [P]`` the boxes carrying a box probe, ``probe_given
     [P, 4]`` their loosened boxes and ``probe_box [P, 4]`` the box predicted around each (xywh px);
     ``seconds`` the training time of the fold models; ``place_image [N]`` / ``place_box [N, 4]`` (xywh px) the
-    places judged for an unannotated object (:mod:`detdiff.crossfit.places`) and ``place_object_p [N]`` the
-    objectness each got from the fold model that did not train on its image (NaN where none).
+    places judged for an unannotated object (:mod:`detdiff.crossfit.places`), ``place_object_p [N]`` the
+    objectness each got from the fold model that did not train on its image (NaN where none) and ``place_probs
+    [N, C]`` the class probabilities it gave the place (NaN where none; empty in run folders of older versions).
     """
 
     probs: np.ndarray
@@ -73,6 +74,7 @@ class CrossFitResult:
     place_image: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     place_box: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
     place_object_p: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    place_probs: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.float32))
 
 
 def assign_folds(num_images: int, folds: int, seed: int) -> np.ndarray:
@@ -380,6 +382,7 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
     inputs = _Inputs(original, trained, crops, probe_rows, probe_boxes, usable_images, int(cfg["input_size"]))
     place_rows = _place_rows(places, original, inputs)
     place_object_p = np.full(len(places.image), np.nan)
+    place_probs = np.full((len(places.image), original.num_classes), np.nan, np.float32)
     fold_of_image = assign_folds(original.num_images, folds, seed)
     fold = fold_of_image[original.ann_image_index]
     num_classes = original.num_classes
@@ -395,6 +398,8 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
                     probs[saved["rows"]], box_units[saved["rows"]] = saved["probs"], saved["box"]
                     probe_units[saved["probe_positions"]] = saved["probe_box"]
                     place_object_p[saved["place_positions"]] = saved["place_object_p"]
+                    if "place_probs" in saved.files:        # folds saved by older versions lack them
+                        place_probs[saved["place_positions"]] = saved["place_probs"]
                     seconds += float(saved["seconds"])
                     continue
         todo.append(k)
@@ -412,19 +417,20 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
             _, pb, _ = _predict(model, inputs, inputs.probe_rows[here], inputs.probe_units[here],
                                 inputs.probe_geometry[here], flips)
             mine = np.flatnonzero(fold_of_image[places.image] == k)
-            _, _, po = _predict(model, place_rows, mine, place_rows.units[mine], place_rows.geometry[mine], flips)
+            pp, _, po = _predict(model, place_rows, mine, place_rows.units[mine], place_rows.geometry[mine], flips)
             elapsed = time.perf_counter() - start
             probs[rows], box_units[rows] = p, b
             probe_units[here] = pb
-            place_object_p[mine] = po
+            place_object_p[mine], place_probs[mine] = po, pp
             _save_fold(out_dir / f"fold_{k}.npz", key=np.array(key), rows=rows, probs=p, box=b,
-                       probe_positions=here, probe_box=pb, place_positions=mine, place_object_p=po,
+                       probe_positions=here, probe_box=pb, place_positions=mine, place_object_p=po, place_probs=pp,
                        seconds=np.float64(elapsed))
             seconds += elapsed
     box = from_reference_units(box_units, inputs.reference)
     probe_box = from_reference_units(probe_units, inputs.reference[inputs.probe_rows])
     result = CrossFitResult(probs, box, fold, inputs.probe_rows, np.asarray(probe_boxes, np.float64), probe_box,
-                            seconds, places.image.astype(np.int64), places.box.astype(np.float64), place_object_p)
+                            seconds, places.image.astype(np.int64), places.box.astype(np.float64), place_object_p,
+                            place_probs)
     _save_fold(out_dir / PREDICTIONS_FILE, **{k: np.asarray(v) for k, v in vars(result).items()})
     return result
 

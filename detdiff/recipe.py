@@ -30,10 +30,10 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
 * **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image plus
   ``recipe.seconds_per_box`` per box, at least ``recipe.min_budget_minutes``: :func:`budget_seconds`; ``--budget``
   on the command line) bounds the training time, estimated from timed steps on this machine: the detector's on
-  ``train.device`` (:func:`measure_step_seconds`; a GPU's step, where training runs on one) and a crop model's step and prediction as a fold does them
-  (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS` calls. Until the crop step was timed with
-  its resampling, on rows drawn from a large store, with the predictions counted and the median taken, the crop
-  estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up to 1.32x their budget. The
+  ``train.device`` (:func:`measure_step_seconds`; a GPU's step, where training runs on one) and a crop model's
+  step and prediction as a fold does them (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS`
+  calls. Until the crop step was timed with its resampling, on rows drawn from a large store, with the predictions
+  counted and the median taken, the crop estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up to 1.32x their budget. The
   crop models judge every box at full resolution whatever the view, so they are served first: they get the time
   their epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their epochs shrink, down to
   ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the view shrinks first

@@ -30,18 +30,18 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
 * **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image plus
   ``recipe.seconds_per_box`` per box, at least ``recipe.min_budget_minutes``: :func:`budget_seconds`; ``--budget``
   on the command line) bounds the training time, estimated from timed steps on this machine: the detector's on
-  ``train.device`` (:func:`measure_step_seconds`; a GPU's step, where training runs on one) and a crop model's
-  step and prediction as a fold does them (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS`
-  calls. Until the crop step was timed with its resampling, on rows drawn from a large store, with the predictions
-  counted and the median taken, the crop estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up to 1.32x their budget. The
-  crop models judge every box at full resolution whatever the view, so they are served first: they get the time
-  their epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their epochs shrink, down to
-  ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the view shrinks first
-  (down to ``recipe.min_view``; a detector needs its steps more than its pixels), then the epochs (down to
-  ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by 32 px, up to
-  ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the
-  smallest objects. The detector is timed at the wanted view and at the chosen one; sizes between are
-  estimated in proportion to the pixels. Every trade is said.
+  ``train.device`` (:func:`measure_step_seconds`; a GPU's step, where training runs on one) and a crop model's step
+  and prediction as a fold does them (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS` calls.
+  Until the crop step was timed with its resampling, on rows drawn from a large store, with the predictions counted
+  and the median taken, the crop estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up
+  to 1.32x their budget. The crop models judge every box at full resolution whatever the view, so they are served
+  first: they get the time their epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their
+  epochs shrink, down to ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the
+  view shrinks first (down to ``recipe.min_view``; a detector needs its steps more than its pixels), then the epochs
+  (down to ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by 32 px, up to
+  ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the smallest
+  objects. The detector is timed at the wanted view and at the chosen one; sizes between are estimated in proportion
+  to the pixels. Every trade is said.
 * ``data.tile_scale``: boxes still under ``recipe.min_object_px`` in the view get tiles of their image enlarged
   until they reach it (:mod:`detdiff.data.views`), at most ``data.tile_scale`` tile px per original px. After the
   view is fitted, the largest scale of ``recipe.max_tile_scale * 0.75^k`` whose tiles fit the detector's share of

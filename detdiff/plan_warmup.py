@@ -117,7 +117,7 @@ def _time_detector(sub: CocoDataset, cache: ImageCache, config: dict[str, Any], 
 
     train = config["train"]
     device = ddp.resolve_device(str(train["device"]))
-    sync = (lambda: torch.cuda.synchronize(device)) if device.type == "cuda" else (lambda: None)
+    sync = ddp.synchronizer(device)
     batch_size, clip = int(train["batch_size"]), float(train["grad_clip"] or 0.0)
     index = np.resize(cache.usable_indices, batch_size)
     model = Detector.from_config({**config["model"], "weights": None}, sub.num_classes, cache.image_size,

@@ -221,9 +221,10 @@ def detector_step(config: dict[str, Any], num_classes: int, image_size: int, box
     gets a recipe sized to the GPU's step, not to the CPU's), as a callable for :func:`time_calls`."""
     from detdiff.model.detector import Detector
     from detdiff.model.losses import compute_loss_streams
-    from detdiff.train.distributed import resolve_device
+    from detdiff.train.distributed import resolve_device, synchronizer
 
     device = resolve_device(str(config["train"].get("device", "cpu")))
+    sync = synchronizer(device)
     batch = int(config["train"]["batch_size"])
     precision = str(config["train"].get("precision", "float32")) if precision is None else precision
     detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size,
@@ -247,8 +248,7 @@ def detector_step(config: dict[str, Any], num_classes: int, image_size: int, box
         if clip > 0:
             torch.nn.utils.clip_grad_norm_(detector.parameters(), clip)
         optimizer.step()
-        if device.type == "cuda":                  # kernels run asynchronously: the step ends when they do
-            torch.cuda.synchronize(device)
+        sync()
 
     return step
 

@@ -275,7 +275,6 @@ def judged_places(dataset: CocoDataset, seen_twice: pd.DataFrame, final_only: pd
         return seen_twice, final_only
     places = pd.concat([seen_twice, final_only], ignore_index=True)
     names = dict(zip(dataset.category_ids.tolist(), dataset.category_names))
-    detector_class = places["suggested_category_id"].to_numpy()
     once = places.iloc[len(seen_twice):]
     boxes = once[["suggested_x", "suggested_y", "suggested_w", "suggested_h"]].to_numpy(np.float64)
     texts = places["evidence"].tolist()[:len(seen_twice)] + [
@@ -290,6 +289,7 @@ def judged_places(dataset: CocoDataset, seen_twice: pd.DataFrame, final_only: pd
     if classed.any():            # the class to add: the crop model's, which judges at full resolution (docstring)
         best = np.nan_to_num(probs).argmax(axis=1)
         crop_class = dataset.category_ids[best]
+        detector_class = places["suggested_category_id"].to_numpy()
         places["suggested_category_id"] = pd.array(np.where(classed, crop_class, detector_class), dtype="Int64")
         places["evidence"] = [f"{text}, most like a '{names[int(c)]}' ({q:.2f})" if ok else text
                               for text, c, q, ok in zip(places["evidence"], crop_class,

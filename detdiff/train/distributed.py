@@ -15,6 +15,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 from datetime import timedelta
+from typing import Callable
 
 import numpy as np
 import torch
@@ -48,6 +49,12 @@ def resolve_device(device: str, local_rank: int = 0) -> torch.device:
             raise RuntimeError("train.device is 'cuda' but torch sees no CUDA device; use train.device: cpu")
         return torch.device("cuda", local_rank % torch.cuda.device_count())
     return torch.device("cpu")
+
+
+def synchronizer(device: torch.device) -> Callable[[], None]:
+    """A call that waits for ``device``'s queued kernels (CUDA runs them asynchronously), a no-op on the CPU: timed
+    steps end when their work does."""
+    return (lambda: torch.cuda.synchronize(device)) if device.type == "cuda" else (lambda: None)
 
 
 def init_distributed(device: str = "auto") -> DistInfo:

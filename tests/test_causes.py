@@ -112,3 +112,26 @@ def test_top_fraction_is_checked() -> None:
     img_scores, img_desc, obj_scores, obj_desc = _planted(60, 20)
     with pytest.raises(ValueError, match="top_fraction"):
         find_causes(img_scores, img_desc, obj_scores, obj_desc, top_fraction=1.5)
+
+
+def test_restated_lines_fold_under_the_stronger_one() -> None:
+    """Dim images are hard in the background stream; contrast follows brightness with a little noise (mostly the same
+    images in its lowest quartile) and crowding is noise: the contrast line folds under the brightness line."""
+    img_scores, img_desc, obj_scores, obj_desc = _planted(n_img=400, seed=3)
+    img_desc["contrast"] = 0.3 * img_desc["brightness"] + np.random.default_rng(4).normal(0.0, 6.0, len(img_desc))
+    t = find_causes(img_scores, img_desc, obj_scores, obj_desc, top_fraction=0.1).table
+    lifts = t[(t.stream == "neg") & (t.level == "image") & (t.test == "lift")]
+    dim = lifts[(lifts.descriptor == "brightness") & lifts.bin.str.startswith("<")].iloc[0]
+    low_contrast = lifts[(lifts.descriptor == "contrast") & lifts.bin.str.startswith("<")].iloc[0]
+    assert dim["significant"] and low_contrast["significant"] and dim["effect"] >= low_contrast["effect"]
+    # the stronger line leads; the other names it, with the Jaccard index of their hardest images
+    # (Jaccard 1901: intersection over union), recomputed here with pandas boolean indexing (independent of the
+    # numpy set routine in causes.py)
+    assert dim["same_items_as"] == -1 and low_contrast["same_items_as"] == dim.name
+    top = img_scores["neg_score"] >= img_scores["neg_score"].quantile(0.9)
+    in_dim = img_desc["brightness"] < img_desc["brightness"].quantile(0.25)
+    in_low = img_desc["contrast"] < img_desc["contrast"].quantile(0.25)
+    both, either = (top & in_low & in_dim).sum(), (top & (in_low | in_dim)).sum()
+    assert low_contrast["same_items_jaccard"] == pytest.approx(both / either) and 0.7 <= both / either < 1
+    assert (t.loc[t.descriptor == "crowding", "same_items_as"] == -1).all()     # noise folds under nothing
+    assert t.loc[t.same_items_as < 0, "same_items_jaccard"].isna().all()

@@ -26,7 +26,8 @@ from report_fixture import CATEGORIES, HOSTILE_CATEGORY, HOSTILE_FILE_NAME, make
 
 from detdiff.analysis import self_check  # noqa: E402
 from detdiff.analysis.calibration import calibrate  # noqa: E402
-from detdiff.report.advice import cause_subject, significant_causes, sourcing_advice, spearman_phrase  # noqa: E402
+from detdiff.report.advice import (cause_sentences, cause_subject, significant_causes, sourcing_advice,  # noqa: E402
+                                  spearman_phrase)
 from detdiff.report.elements import el  # noqa: E402
 from detdiff.report.html import write_report  # noqa: E402
 from detdiff.report.run_folder import RunFolder, lint_code_counts, lint_totals, read_table  # noqa: E402
@@ -398,3 +399,22 @@ def test_list_precision_says_which_way_its_estimate_leans(tmp_path):
     (rundir / "self_check.json").write_text(json.dumps(checks))
     assert RunFolder.load(rundir).expected_precision("missing_box") == (1.0, "")
     assert ">1.000<" in write_report(rundir, thumbnails=False).read_text()
+
+
+def test_restated_causes_share_one_sentence() -> None:
+    """A line folded under a stronger one (causes.csv ``same_items_as``) is named in that line's sentence, and
+    the same bin for another stream is added to the stronger stream's sentence."""
+    def row(stream, descriptor, bin_text, effect, lead=-1):
+        return {"stream": stream, "level": "image", "descriptor": descriptor, "test": "lift", "bin": bin_text,
+                "effect": effect, "significant": True, "top_rate": 0.75 * effect / 3, "base_rate": 0.25,
+                "same_items_as": lead}
+    causes = pd.DataFrame([row("pos", "blur_laplacian_var", "< 854", 3.1), row("pos", "contrast", "< 41.7", 2.9, 0),
+                           row("loc", "blur_laplacian_var", "< 854", 2.5), row("pos", "crowding", ">= 0.2", 1.5)])
+    texts = [text for text, _ in cause_sentences(causes, 0.1)]
+    assert texts == [
+        "Images with sharpness (Laplacian variance) < 854 are 3.1 times as common among the hardest tenth for the "
+        "positive-class loss as in the dataset (78% vs 25%), and 2.5 times for box regression. Most of the hardest "
+        "images with contrast < 41.7 (2.9 times) are these same images.",
+        "Images with crowding >= 0.2 are 1.5 times as common among the hardest tenth for the positive-class loss as "
+        "in the dataset (38% vs 25%)."]
+    assert significant_causes(causes, "pos")["descriptor"].tolist() == ["blur_laplacian_var", "crowding"]

@@ -61,14 +61,65 @@ def cause_subject(level: str, descriptor: str, bin_text: str) -> str:
     return f"{noun} with {words} = {text}"
 
 
-def lift_sentence(row: pd.Series, top_fraction: float) -> str:
-    """One causes.csv lift row as a sentence with its lift and the two rates."""
+def lift_sentence(row: pd.Series, top_fraction: float, folded: list[pd.Series] | None = None,
+                  also: list[pd.Series] | None = None) -> str:
+    """One causes.csv lift row as a sentence with its lift and the two rates; ``also``: the same bin's lifts for
+    other streams, ``folded``: the lines of its stream whose hardest items are mostly its own
+    (:func:`detdiff.analysis.causes.fold_restatements`), each named with its lift."""
     subject = cause_subject(str(row["level"]), str(row["descriptor"]), str(row["bin"]))
     lift = float(row["effect"])
     times = f"{lift:.1f} times" if lift >= 1 else f"only {lift:.2f} times"
+    others = "".join(f", and {float(r['effect']):.1f} times for "
+                     f"{STREAM_PHRASES.get(str(r['stream']), str(r['stream']))}" for r in also or [])
     return (f"{subject} are {times} as common among the hardest {fraction_words(top_fraction)} for "
             f"{STREAM_PHRASES.get(str(row['stream']), str(row['stream']))} as in the dataset "
-            f"({format_percent(float(row['top_rate']))} vs {format_percent(float(row['base_rate']))}).")
+            f"({format_percent(float(row['top_rate']))} vs {format_percent(float(row['base_rate']))}){others}."
+            + _restated_clause(str(row["level"]), folded or []))
+
+
+def _restated_clause(level: str, folded: list[pd.Series]) -> str:
+    """`` Most of the hardest images with A (3.0 times) or B (2.9 times) are these same images.`` ('' for none)."""
+    if not folded:
+        return ""
+    noun = "images" if level == "image" else "objects"
+    subjects = [cause_subject(str(r["level"]), str(r["descriptor"]), str(r["bin"])) for r in folded]
+    prefix = f"{noun.capitalize()} with "
+    common = all(s.startswith(prefix) for s in subjects)
+    parts = [f"{s.removeprefix(prefix) if common else s[0].lower() + s[1:]} ({float(r['effect']):.1f} times)"
+             for s, r in zip(subjects, folded)]
+    listed = parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " or " + parts[-1]
+    return f" Most of the hardest {noun + ' with ' if common else ''}{listed} are these same {noun}."
+
+
+def folded_rows(causes: pd.DataFrame) -> dict[int, list[pd.Series]]:
+    """Rows folded under each leading line (causes.csv ``same_items_as``), strongest first; empty for a table
+    written before the fold existed."""
+    if "same_items_as" not in causes:
+        return {}
+    lead = pd.to_numeric(causes["same_items_as"], errors="coerce").fillna(-1).astype(np.int64)
+    rows = causes[lead >= 0]
+    rows = rows.iloc[np.argsort(-pd.to_numeric(rows["effect"], errors="coerce").to_numpy(), kind="stable")]
+    out: dict[int, list[pd.Series]] = {}
+    for index, row in rows.iterrows():
+        out.setdefault(int(lead[index]), []).append(row)
+    return out
+
+
+def cause_sentences(causes: pd.DataFrame, top_fraction: float, stream: str | None = None
+                    ) -> list[tuple[str, pd.Series]]:
+    """A sentence per significant lift line above 1 (strongest first) with its restatements folded in; across
+    streams (``stream=None``) a bin already named for a stronger stream is added to that sentence. Returns
+    (sentence, leading row) pairs."""
+    causes = causes.reset_index(drop=True)
+    folded = folded_rows(causes)
+    rows = significant_causes(causes, stream)
+    lines: dict[tuple[str, str, str], list[pd.Series]] = {}
+    for _, row in rows[rows["test"] == "lift"].iterrows():
+        if float(row["effect"]) <= 1:
+            continue
+        lines.setdefault((str(row["level"]), str(row["descriptor"]), str(row["bin"])), []).append(row)
+    return [(lift_sentence(same[0], top_fraction, folded.get(int(same[0].name), []), same[1:]), same[0])
+            for same in lines.values()]
 
 
 def rank_correlation(test: Any, effect: Any) -> np.ndarray:
@@ -90,8 +141,11 @@ def spearman_phrase(row: pd.Series) -> str:
 
 def significant_causes(causes: pd.DataFrame, stream: str | None = None) -> pd.DataFrame:
     """Significant rows, strongest first: lifts above 1 by lift, then Spearman / Mann-Whitney rows by the
-    size of their rank correlation (see :func:`rank_correlation`)."""
+    size of their rank correlation (see :func:`rank_correlation`); lift lines folded under a stronger one
+    (``same_items_as``) are left out."""
     rows = causes[causes["significant"].astype(bool)]
+    if "same_items_as" in rows:                    # restatements are named in their leading line's sentence
+        rows = rows[pd.to_numeric(rows["same_items_as"], errors="coerce").fillna(-1) < 0]
     if stream is not None:
         rows = rows[rows["stream"] == stream]
     effect = pd.to_numeric(rows["effect"], errors="coerce")
@@ -193,8 +247,7 @@ def lint_advice(run: RunFolder) -> list[Advice]:
 
 def sourcing_advice(run: RunFolder, *, limit: int = 8) -> list[Advice]:
     """What to fix, relabel and collect, each sentence carrying its number; at most ``limit`` cause lines."""
-    causes = significant_causes(run.causes)
-    lifts = causes[causes["test"] == "lift"].head(limit)
-    collect = [Advice("collect", lift_sentence(row, run.top_fraction), float(row["effect"]), str(row["stream"]),
-                      emphasis=f"{float(row['effect']):.1f} times") for _, row in lifts.iterrows()]
+    collect = [Advice("collect", text, float(row["effect"]), str(row["stream"]),
+                      emphasis=f"{float(row['effect']):.1f} times")
+               for text, row in cause_sentences(run.causes, run.top_fraction)[:limit]]
     return lint_advice(run) + suspect_advice(run) + collect

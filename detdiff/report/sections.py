@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from detdiff.report.advice import Advice, lift_sentence, significant_causes, sourcing_advice
+from detdiff.report.advice import Advice, cause_sentences, sourcing_advice
 from detdiff.report.cards import image_card, missing_place_cards, object_cards, stream_rows, suspect_cards
 from detdiff.report.elements import Markup, data_table, el, fmt, join, num_cell, plot_image
 from detdiff.report.page import Page
@@ -218,8 +218,7 @@ def _stream_section(page: Page, stream: str) -> Markup:
     body = [el("h2", None, title, el("span", {"class": "sub"}, f"{stream} stream")),
             el("p", {"class": "lead"}, STREAM_EXPLAINED[stream]),
             legend(toggle=True)]
-    sentences = significant_causes(page.run.causes, stream)
-    sentences = [lift_sentence(r, page.run.top_fraction) for _, r in sentences.iterrows() if r["test"] == "lift"]
+    sentences = [text for text, _ in cause_sentences(page.run.causes, page.run.top_fraction, stream)]
     if sentences:
         body.append(el("ul", {"class": "advice"}, [el("li", {"class": "collect"}, s) for s in sentences[:6]]))
     body.append(el("h3", None, "Hardest images", el("span", {"class": "sub"}, f"top {len(hardest)}")))

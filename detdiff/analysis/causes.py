@@ -239,24 +239,24 @@ def fold_restatements(table: pd.DataFrame, hardest: dict[int, np.ndarray]) -> tu
     ``same_items_jaccard`` (``[R]``, NaN where not folded) of the table's rows (module docstring). ``hardest``:
     the sorted item rows of each lift row in its bin and its stream's top."""
     lead = np.full(len(table), -1, dtype=np.int64)
-    share = np.full(len(table), np.nan)
+    jaccard = np.full(len(table), np.nan)
     effect = pd.to_numeric(table["effect"], errors="coerce")
     eligible = table[(table["test"] == "lift") & table["significant"].astype(bool) & (effect > 1)]
     for _, group in eligible.groupby(["level", "stream"], sort=False):
         leads: list[int] = []
         for row in group.index[np.argsort(-effect[group.index].to_numpy(), kind="stable")]:
-            items = hardest.get(int(row), np.zeros(0, np.int64))
+            items = hardest[int(row)]                  # a significant lift above 1 has items in the top
             for first in leads:
-                if table.at[first, "descriptor"] == table.at[row, "descriptor"] or not len(items):
+                if table.at[first, "descriptor"] == table.at[row, "descriptor"]:
                     continue
                 both = len(np.intersect1d(items, hardest[first], assume_unique=True))
-                common = both / (len(items) + len(hardest[first]) - both)
-                if common >= SAME_ITEMS_JACCARD:
-                    lead[row], share[row] = first, common
+                overlap = both / (len(items) + len(hardest[first]) - both)
+                if overlap >= SAME_ITEMS_JACCARD:
+                    lead[row], jaccard[row] = first, overlap
                     break
             else:
                 leads.append(int(row))
-    return lead, share
+    return lead, jaccard
 
 
 def _why_strings(num_items: int, tagged: list[tuple], table: pd.DataFrame, tag_index: dict[str, int]) -> np.ndarray:

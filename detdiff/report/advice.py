@@ -64,7 +64,7 @@ def cause_subject(level: str, descriptor: str, bin_text: str) -> str:
 def lift_sentence(row: pd.Series, top_fraction: float, folded: list[pd.Series] | None = None,
                   also: list[pd.Series] | None = None) -> str:
     """One causes.csv lift row as a sentence with its lift and the two rates; ``also``: the same bin's lifts for
-    other streams, ``folded``: the lines of its stream whose hardest items are mostly its own
+    other streams, ``folded``: the lines of its stream whose hardest items are largely the same
     (:func:`detdiff.analysis.causes.fold_restatements`), each named with its lift."""
     subject = cause_subject(str(row["level"]), str(row["descriptor"]), str(row["bin"]))
     lift = float(row["effect"])
@@ -114,9 +114,7 @@ def cause_sentences(causes: pd.DataFrame, top_fraction: float, stream: str | Non
     folded = folded_rows(causes)
     rows = significant_causes(causes, stream)
     lines: dict[tuple[str, str, str], list[pd.Series]] = {}
-    for _, row in rows[rows["test"] == "lift"].iterrows():
-        if float(row["effect"]) <= 1:
-            continue
+    for _, row in rows[rows["test"] == "lift"].iterrows():       # lifts above 1 only (significant_causes)
         lines.setdefault((str(row["level"]), str(row["descriptor"]), str(row["bin"])), []).append(row)
     return [(lift_sentence(same[0], top_fraction, folded.get(int(same[0].name), []), same[1:]), same[0])
             for same in lines.values()]

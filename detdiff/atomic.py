@@ -18,9 +18,9 @@ def write_text_atomic(path: str | Path, text: str) -> Path:
     return path
 
 
-def write_json_atomic(path: str | Path, data: Any, *, sort_keys: bool = False) -> Path:
-    """JSON (indent 1; paths and other non-JSON values as strings) written atomically."""
-    return write_text_atomic(path, json.dumps(data, indent=1, sort_keys=sort_keys, default=str) + "\n")
+def write_json_atomic(path: str | Path, data: Any, *, sort_keys: bool = False, indent: int | None = 1) -> Path:
+    """JSON (``indent`` 1 unless given; paths and other non-JSON values as strings) written atomically."""
+    return write_text_atomic(path, json.dumps(data, indent=indent, sort_keys=sort_keys, default=str) + "\n")
 
 
 def reserve(path: str | Path) -> None:

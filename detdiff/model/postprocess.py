@@ -1,6 +1,6 @@
 """Detections from the head outputs (decode + class-aware NMS) and pooled per-object features.
 
-Both work on whole batches: one :func:`torchvision.ops.batched_nms` over all images (groups = image x class),
+Both work on whole batches: one class-aware NMS over all images (groups = image x class, :func:`grouped_nms`),
 one :func:`torchvision.ops.roi_align` per pyramid level.
 """
 
@@ -10,12 +10,48 @@ from collections.abc import Sequence
 from typing import Any
 
 import torch
-from torchvision.ops import batched_nms, roi_align
+from torchvision.ops import nms, roi_align
 
 from detdiff.model.box_coder import BoxCoder
 
 #: Highest-scoring (anchor, class) pairs per image decoded before NMS (keeps NMS cheap).
 PRE_NMS_TOP = 1000
+
+
+#: :func:`grouped_nms` suppresses within blocks of whole groups of about this many boxes: the NMS kernel compares each
+#: kept box with every later box of its call, so one call over everything costs boxes x kept.
+NMS_BLOCK = 2000
+
+
+def grouped_nms(boxes: torch.Tensor, scores: torch.Tensor, groups: torch.Tensor, iou_threshold: float) -> torch.Tensor:
+    """Indices kept by NMS within each group (boxes of different groups never suppress each other), by score
+    descending: the kept set of :func:`torchvision.ops.batched_nms`.
+
+    On CPU ``batched_nms`` falls back, above 4,000 boxes, to a loop over the groups that scans every box once per
+    group: on the final pass of an 800-image aerial audit (about 30,000 candidates and 480 groups a batch) it took
+    9.6 of the pass's 67 s. Here the boxes are sorted by group once and cut into blocks of whole groups of about
+    :data:`NMS_BLOCK` boxes; within a block each group is moved by its own offset so that no two groups overlap
+    (torchvision's "coordinate trick", in float64 so that the offsets keep the boxes' precision) and one
+    :func:`torchvision.ops.nms` call suppresses the block.
+    """
+    if boxes.numel() == 0:
+        return torch.zeros(0, dtype=torch.int64, device=boxes.device)
+    order = torch.argsort(groups, stable=True)
+    dense = torch.unique_consecutive(groups[order], return_inverse=True)[1]
+    sizes = torch.bincount(dense)
+    block_of_group = (torch.cumsum(sizes, 0) - sizes) // NMS_BLOCK
+    ends = torch.cumsum(torch.bincount(block_of_group[dense]), 0).tolist()
+    wide = boxes.to(torch.float64)[order]
+    span = float(wide.max() - wide.min()) + 1.0
+    shifted = wide + (dense.to(torch.float64) * span)[:, None]
+    ranked = scores.to(torch.float64)[order]
+    kept, start = [], 0
+    for end in ends:
+        if end > start:
+            kept.append(order[start + nms(shifted[start:end], ranked[start:end], iou_threshold)])
+        start = end
+    keep = torch.cat(kept)
+    return keep[torch.argsort(scores[keep], descending=True, stable=True)]
 
 
 def postprocess_detections(outputs: dict[str, Any], anchors: torch.Tensor, *, score_threshold: float,
@@ -40,7 +76,7 @@ def postprocess_detections(outputs: dict[str, Any], anchors: torch.Tensor, *, sc
     boxes = coder.decode(deltas[cand_b, cand_n], anchors[cand_n])
     if image_size is not None:
         boxes = boxes.clamp(min=0, max=float(image_size))
-    keep = batched_nms(boxes, scores, cand_b * num_classes + labels, nms_iou)         # scores descending
+    keep = grouped_nms(boxes, scores, cand_b * num_classes + labels, nms_iou)         # scores descending
     cand_b, boxes, scores, labels = cand_b[keep], boxes[keep], scores[keep], labels[keep]
     order = torch.argsort(cand_b, stable=True)
     cand_b, boxes, scores, labels = cand_b[order], boxes[order], scores[order], labels[order]

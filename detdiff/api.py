@@ -87,7 +87,7 @@ def audit(annotations: str | Path, images: str | Path, out: str | Path, *, confi
 
     ``config`` is a YAML path or a packaged config's name; the keywords after it override its values
     (``flips``: ``none`` | ``horizontal`` | ``both`` | ``dihedral``, the ``train.flips`` key; ``budget``: minutes
-    of training to fit the recipe to, default the config's ``recipe.budget_minutes``).
+    of the whole audit to fit the recipe to, default the config's ``recipe.budget_minutes``).
     """
     from detdiff.pipeline import run_audit, run_overrides
 

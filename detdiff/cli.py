@@ -163,8 +163,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=None, help="seed of initialisation, batch order and flips")
     p.add_argument("--threads", type=int, default=None, help="torch threads (default: all cores)")
     p.add_argument("--budget", type=float, default=None, metavar="MINUTES",
-                   help="training time to fit the recipe to, estimated on this machine before training (default: "
-                        "config recipe.budget_minutes); over it, epochs and then the view size are reduced")
+                   help="time for the whole audit to fit the recipe to, estimated on this machine before training "
+                        "(default: config recipe.budget_minutes); decoding, evaluation, analysis and report are "
+                        "estimated first and training gets the rest; over it, crop-model epochs, the view size, "
+                        "epochs and tiles are reduced")
     p.add_argument("--cache-codec", choices=["auto", "raw", "jpeg"], default=None,
                    help="how the decoded image cache is stored (default: config data.cache_codec, auto): raw uint8 "
                         "rows, or jpeg, about a tenth of the disk, decoded again on every read")

@@ -278,18 +278,24 @@ def _complete_cache(dataset: CocoDataset, config: dict[str, Any], rundir: Path) 
         dataset, cache_dir, int(config["data"]["image_size"]), **cache_options(config)) is not None
 
 
+def decode_workers(images: int) -> int:
+    """Processes that decode the image cache: ``build_image_cache``'s default worker count, one (in-process) under
+    4 images per worker."""
+    from detdiff.data.image_cache import build_image_cache
+    from detdiff.train.resources import available_cores
+
+    workers = int(inspect.signature(build_image_cache).parameters["workers"].default)
+    return 1 if images < 4 * workers else max(1, min(workers, available_cores()))
+
+
 def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, warm: Warmup,
              work: np.ndarray, boxes: int, detections: float) -> None:
     """Seconds per stage from the warm-up's measurements and the audit's step counts."""
     from detdiff.crossfit.folds import assign_folds, fold_steps
     from detdiff.data.cache_shards import decode_work
-    from detdiff.data.image_cache import build_image_cache
-    from detdiff.train.resources import available_cores
 
     images, train, cfg = dataset.num_images, config["train"], config["crossfit"]
-    # the audit builds the cache with build_image_cache's default worker count, in-process under 4 per worker
-    workers = int(inspect.signature(build_image_cache).parameters["workers"].default)
-    workers = 1 if images < 4 * workers else max(1, min(workers, available_cores()))
+    workers = decode_workers(images)
     decoded = _complete_cache(dataset, config, plan.rundir)
     plan.seconds["decode"] = 0.0 if decoded else warm.decode_s_per_work * float(work.sum()) / workers
     plan.seconds_basis["decode"] = ("a complete cache is there" if decoded else
@@ -324,15 +330,25 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
         else:
             plan.seconds["crop models"] = float(recipe.estimate.get("crop_models_s", 0.0))
             plan.seconds_basis["crop models"] = "the recipe's estimate (no usable box in the sample)"
-    plan.seconds["evaluate"] = (views * (warm.forward_s_per_image or 0.0)
-                                + COCOEVAL_S_PER_ITEM * (boxes + detections))
-    plan.seconds_basis["evaluate"] = (f"{views} forward passes x {(warm.forward_s_per_image or 0.0) * 1e3:.1f} ms "
-                                      f"+ COCOeval of {boxes} boxes and about {detections:.0f} detections")
-    plan.seconds["analysis"] = ANALYSIS_FIXED_S + ANALYSIS_S_PER_BOX * dataset.num_annotations
-    plan.seconds_basis["analysis"] = f"{ANALYSIS_FIXED_S} s + {ANALYSIS_S_PER_BOX * 1e6:.0f} us per box"
+    after, basis = after_training_seconds(dataset, config, warm, views, boxes, detections)
+    plan.seconds.update(after)
+    plan.seconds_basis.update(basis)
+
+
+def after_training_seconds(dataset: CocoDataset, config: dict[str, Any], warm: Warmup, views: int, boxes: int,
+                           detections: float) -> tuple[dict[str, float], dict[str, str]]:
+    """Seconds of the stages after training (evaluate, analysis, report), each with its basis line: the final
+    pass's ``views`` forward passes and COCOeval, analysis per box, the report's thumbnails."""
+    images = dataset.num_images
+    seconds = {"evaluate": views * (warm.forward_s_per_image or 0.0) + COCOEVAL_S_PER_ITEM * (boxes + detections),
+               "analysis": ANALYSIS_FIXED_S + ANALYSIS_S_PER_BOX * dataset.num_annotations}
     shown = min(images, REPORT_SHOTS_PER_TOP * int(config["report"]["top"])) if config["report"]["thumbnails"] else 0
-    plan.seconds["report"] = REPORT_FIXED_S + shown * warm.decode_s_per_image
-    plan.seconds_basis["report"] = f"{REPORT_FIXED_S} s + {shown} images read for thumbnails"
+    seconds["report"] = REPORT_FIXED_S + shown * warm.decode_s_per_image
+    basis = {"evaluate": (f"{views} forward passes x {(warm.forward_s_per_image or 0.0) * 1e3:.1f} ms + COCOeval of "
+                          f"{boxes} boxes and about {detections:.0f} detections"),
+             "analysis": f"{ANALYSIS_FIXED_S} s + {ANALYSIS_S_PER_BOX * 1e6:.0f} us per box",
+             "report": f"{REPORT_FIXED_S} s + {shown} images read for thumbnails"}
+    return seconds, basis
 
 
 def _rss_bytes() -> int:
@@ -394,7 +410,8 @@ def _small_objects(plan: Plan, dataset: CocoDataset, config: dict[str, Any], rec
         return
     est, growth = recipe.estimate, (view / size) ** 2
     detector = plan.seconds.get("detector", 0.0)
-    budget = (float(est.get("detector_training_s", 0.0)) * growth + float(est.get("crop_models_s", 0.0))) / 60
+    budget = (float(est.get("detector_training_s", 0.0)) * growth + float(est.get("crop_models_s", 0.0))
+              + float(est.get("other_stages_s", 0.0))) / 60
     grows = (not recipe.reasons.get("data.image_size", "given").startswith("given")
              and view <= int(config["recipe"]["max_view"]) and budget > 0)      # the recipe enlarges the view itself
     plan.small["flag"] = f"--image-size {view}" + (f" (or --budget {math.ceil(budget)})" if grows else "")

@@ -192,8 +192,10 @@ def _time_crop_model(sub: CocoDataset, cache: ImageCache, config: dict[str, Any]
                                                             str(config["train"]["flips"]))
 
 
-def run_warmup(dataset: CocoDataset, config: dict[str, Any], work: np.ndarray, options: dict[str, Any]) -> Warmup:
-    """Decode the sample and time the models' steps on it (module docstring), with the training thread count."""
+def run_warmup(dataset: CocoDataset, config: dict[str, Any], work: np.ndarray, options: dict[str, Any], *,
+               models: bool = True) -> Warmup:
+    """Decode the sample and time the models' steps on it (module docstring), with the training thread count
+    (``models=False``: the decoding only, as the recipe needs it to set the training's share of the budget)."""
     from detdiff.train.resources import thread_count
 
     rows = sample_rows(work)
@@ -210,7 +212,7 @@ def run_warmup(dataset: CocoDataset, config: dict[str, Any], work: np.ndarray, o
                                                                    else 0)) / max(cache.num_images + cache.num_tiles, 1))
                 if cache.crops is not None and len(cache.crops):
                     warm.encoded_crop_bytes = cache.crops.nbytes / len(cache.crops)
-            if cache.usable.any():
+            if models and cache.usable.any():
                 _time_detector(sub, cache, config, warm, Path(tmp))
                 if options["with_crops"]:
                     _time_crop_model(sub, cache, config, warm)

@@ -29,19 +29,25 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
   budget).
 * **Budget**: ``recipe.budget_minutes`` (``auto``: ``recipe.seconds_per_image`` per image plus
   ``recipe.seconds_per_box`` per box, at least ``recipe.min_budget_minutes``: :func:`budget_seconds`; ``--budget``
-  on the command line) bounds the training time, estimated from timed steps on this machine: the detector's on
+  on the command line) bounds the whole audit. The stages outside training (decoding, the final pass, analysis,
+  report) are projected first, as the plan projects them (:func:`other_stage_seconds`: a sample of the images
+  decoded); the training gets the rest (at least :data:`MIN_TRAINING_SHARE` of the budget). Until it did, the
+  budget bounded the training alone and the other stages, 1-2 minutes at 800 real-size images, came on top. The
+  training is estimated from timed steps on this machine: the detector's on
   ``train.device`` (:func:`measure_step_seconds`; a GPU's step, where training runs on one) and a crop model's step
   and prediction as a fold does them (:func:`measure_crop_seconds`), each the median of :data:`TIMED_STEPS` calls.
   Until the crop step was timed with its resampling, on rows drawn from a large store, with the predictions counted
   and the median taken, the crop estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up
   to 1.32x their budget. The crop models judge every box at full resolution whatever the view, so they are served
-  first: they get the time their epochs want, up to ``1 - recipe.detector_share`` of the budget (over it, their
-  epochs shrink, down to ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the
+  first: they get the time their epochs want, up to ``1 - recipe.detector_share`` of the training's time (over
+  it, their epochs shrink, down to ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the
   view shrinks first (down to ``recipe.min_view``; a detector needs its steps more than its pixels), then the epochs
   (down to ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by 32 px, up to
   ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the smallest
-  objects. The detector is timed at the wanted view and at the chosen one; sizes between are estimated in proportion
-  to the pixels. Every trade is said.
+  objects. Where the crop models' epochs were cut and the detector's trades (in steps: 32 px, 0.8x epochs) leave
+  part of its share unused, that time goes back to the crop models' epochs (up to the number wanted). The detector
+  is timed at the wanted view and at the chosen one; sizes between are estimated in proportion to the pixels.
+  Every trade is said.
 * ``data.tile_scale``: boxes still under ``recipe.min_object_px`` in the view get tiles of their image enlarged
   until they reach it (:mod:`detdiff.data.views`), at most ``data.tile_scale`` tile px per original px. After the
   view is fitted, the largest scale of ``recipe.max_tile_scale * 0.75^k`` whose tiles fit the detector's share of
@@ -80,6 +86,11 @@ KMEANS_ITERATIONS = 60
 TIMED_STEPS = 5
 #: ``crossfit.precision`` auto: bfloat16 from this speed-up of a timed crop-model step over float32.
 BF16_MIN_SPEEDUP = 1.15
+#: A final-pass forward per image (eval mode, with NMS) as a share of a training step per image: 0.35-0.69, median
+#: 0.55, in the plan warm-ups of seven validity audits (plan.json ``forward_s_per_image`` / ``detector_step_s`` x 16).
+FORWARD_SHARE_OF_STEP = 0.55
+#: The training keeps at least this share of the budget whatever the other stages are estimated to take.
+MIN_TRAINING_SHARE = 0.5
 #: Least anchor side (square root of its area) in strides of its detection level.
 MIN_ANCHOR_STRIDES = 1.25
 
@@ -491,44 +502,43 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     cfg, train, crossfit, data = config["recipe"], config["train"], config["crossfit"], config["data"]
     tiled = tiled_image_share(dataset, _largest_view(dataset, cfg), cfg) if auto_tiles else 0.0
     budget = budget_seconds(cfg, images, tiled, boxes)
-    if _is_auto(cfg["budget_minutes"]):
-        tiles = (f", x{1 + tiled:.2f} for the {tiled:.0%} of the images whose small boxes need tiles" if tiled > 0
-                 else "")
-        recipe.notes.append(f"budget {budget / 60:.1f} min: {cfg['seconds_per_image']} s per image{tiles}, + "
-                            f"{cfg.get('seconds_per_box', 0)} s per box (--budget MINUTES)")
     folds, batch, crop_batch = int(crossfit["folds"]), int(train["batch_size"]), int(crossfit["batch_size"])
     per_image = math.ceil(boxes / max(images, 1))
     target = float(cfg["min_object_px"])
-    if auto_tiles:
-        data["tile_scale"] = 0.0                   # fitted below, once the view is
-    views = {"count": images + tile_count(dataset, int(data["image_size"]), float(data["tile_scale"] or 0), target)}
 
     def measure(size: int) -> None:
         speeds[size] = measure_step_seconds(_with_anchors(config, dataset), dataset.num_classes, size,
                                             boxes_per_image=per_image)
+
+    if int(data["image_size"]) not in speeds:
+        measure(int(data["image_size"]))
+    other = other_stage_seconds(dataset, config, images, boxes, speeds[int(data["image_size"])],
+                                float(cfg["max_tile_scale"]) if auto_tiles else float(data.get("tile_scale") or 0))
+    training = _training_budget(recipe, cfg, budget, other, tiled)
+    if auto_tiles:
+        data["tile_scale"] = 0.0                   # fitted below, once the view is
+    views = {"count": images + tile_count(dataset, int(data["image_size"]), float(data["tile_scale"] or 0), target)}
 
     def detector_seconds() -> float:
         size = int(data["image_size"])
         timed = min(speeds, key=lambda s: abs(s - size))
         return int(train["epochs"]) * math.ceil(views["count"] / batch) * speeds[timed] * (size / timed) ** 2
 
-    if int(data["image_size"]) not in speeds:
-        measure(int(data["image_size"]))
-    crop_s = 0.0
+    crop_s, wanted_crop = 0.0, float(crossfit["epochs"])
     if crossfit["enabled"]:
         step_s, predict_s = measure_crop_seconds(config, dataset.num_classes)
         recipe.estimate.update({"crop_step_s": round(step_s, 4), "crop_predict_s_per_box": round(predict_s, 6)})
         per_epoch = folds * math.ceil(boxes * (folds - 1) / folds / crop_batch) * step_s
         places = int(crossfit["places_per_image"]) * images       # unannotated places judged, at most
         predictions = (2 * boxes + places) * predict_s   # every box and its box probe, once each, and the places
-        crop_budget = budget * (1 - float(cfg["detector_share"]))
+        crop_budget = training * (1 - float(cfg["detector_share"]))
         if auto_crop and float(crossfit["epochs"]) * per_epoch + predictions > crop_budget:
             new = max(float(cfg["min_crop_epochs"]), round((crop_budget - predictions) / per_epoch, 1))
             if new < float(crossfit["epochs"]):
                 recipe.traded.append(f"crossfit.epochs {crossfit['epochs']} -> {new} for the budget")
                 crossfit["epochs"] = new
         crop_s = float(crossfit["epochs"]) * per_epoch + predictions
-    detector_budget = budget - crop_s
+    detector_budget = training - crop_s
     while detector_seconds() > detector_budget:
         if auto_view and int(data["image_size"]) > int(cfg["min_view"]):
             new = max(int(cfg["min_view"]), int(data["image_size"]) - VIEW_MULTIPLE)
@@ -563,13 +573,59 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
     if int(data["image_size"]) not in speeds:
         measure(int(data["image_size"]))
     det_s = detector_seconds()
+    if crossfit["enabled"] and auto_crop and float(crossfit["epochs"]) < wanted_crop and det_s < detector_budget:
+        more = min(wanted_crop, math.floor(10 * (float(crossfit["epochs"]) + (detector_budget - det_s) / per_epoch)) / 10)
+        if more > float(crossfit["epochs"]):        # the detector's share left over goes back to the crop models
+            recipe.notes.append(f"crossfit.epochs {crossfit['epochs']} -> {more} with the time the detector's share "
+                                f"left over")
+            crossfit["epochs"] = more
+            crop_s = more * per_epoch + predictions
     recipe.estimate.update({"views_per_epoch": int(views["count"]),
                             "detector_step_s": round(speeds[int(data["image_size"])], 4),
                             "detector_training_s": round(det_s, 1), "crop_models_s": round(crop_s, 1),
-                            "budget_s": round(budget, 1)})
-    if det_s + crop_s > budget * 1.05:
-        recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over the budget of "
-                            f"{budget / 60:.1f} min, with nothing left to trade; raise --budget or set smaller values")
+                            "budget_s": round(budget, 1), "other_stages_s": round(other, 1),
+                            "training_budget_s": round(training, 1)})
+    if det_s + crop_s > training * 1.05:
+        recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over its {training / 60:.1f} "
+                            f"min of the budget, with nothing left to trade; raise --budget or set smaller values")
+
+
+def _training_budget(recipe: Recipe, cfg: dict[str, Any], budget: float, other: float, tiled: float) -> float:
+    """Seconds of ``budget`` (the whole audit) left to training after the ``other`` stages, at least
+    :data:`MIN_TRAINING_SHARE` of it; the note that says so."""
+    training = max(budget - other, MIN_TRAINING_SHARE * budget)
+    whole = f"budget {budget / 60:.1f} min for the whole audit"
+    if _is_auto(cfg["budget_minutes"]):
+        tiles = (f", x{1 + tiled:.2f} for the {tiled:.0%} of the images whose small boxes need tiles" if tiled > 0
+                 else "")
+        whole += (f" ({cfg['seconds_per_image']} s per image{tiles}, + {cfg.get('seconds_per_box', 0)} s per box; "
+                  f"--budget MINUTES)")
+    recipe.notes.append(f"{whole}: {other / 60:.1f} min estimated for decoding, the final pass, analysis and report "
+                        f"leave {training / 60:.1f} min for training"
+                        + ("" if budget - other >= training else
+                           f" (at least {MIN_TRAINING_SHARE:.0%} of the budget: the audit will take longer)"))
+    return training
+
+
+def other_stage_seconds(dataset: CocoDataset, config: dict[str, Any], images: int, boxes: int, step_s: float,
+                        tile_scale: float) -> float:
+    """Seconds of the audit outside training, projected as :mod:`detdiff.plan` projects them: decoding (a sample
+    of the images decoded, :func:`detdiff.plan_warmup.run_warmup` without the models), and the final pass,
+    analysis and report (:func:`detdiff.plan.after_training_seconds`), the final pass's forward passes at
+    :data:`FORWARD_SHARE_OF_STEP` of a timed training step per image, over the whole views and the tiles at
+    ``tile_scale``."""
+    from detdiff.data.cache_shards import decode_work
+    from detdiff.plan import DETECTIONS_PER_BOX, after_training_seconds, cache_options, decode_workers
+    from detdiff.plan_warmup import run_warmup
+
+    size = int(config["data"]["image_size"])
+    work = decode_work(dataset, size, bool(config["data"]["reduced_decode"]))
+    warm = run_warmup(dataset, config, work, cache_options(config), models=False)
+    warm.forward_s_per_image = step_s / int(config["train"]["batch_size"]) * FORWARD_SHARE_OF_STEP
+    views = images + tile_count(dataset, size, tile_scale, float(config["recipe"]["min_object_px"]))
+    detections = min(DETECTIONS_PER_BOX * boxes, float(config["eval"]["max_detections"]) * images)
+    after, _ = after_training_seconds(dataset, config, warm, views, boxes, detections)
+    return warm.decode_s_per_work * float(work.sum()) / decode_workers(images) + sum(after.values())
 
 
 def tile_reason(dataset: CocoDataset, size: int, cap: float, target: float) -> str:
@@ -650,7 +706,9 @@ def format_recipe(recipe: Recipe) -> str:
         total = recipe.estimate["detector_training_s"] + recipe.estimate["crop_models_s"]
         lines.append(f"  estimated training: detector {recipe.estimate['detector_training_s'] / 60:.1f} min, crop models "
                      f"{recipe.estimate['crop_models_s'] / 60:.1f} min, {total / 60:.1f} min in all on this machine "
-                     f"(budget {recipe.estimate['budget_s'] / 60:.1f} min)")
+                     f"(budget {recipe.estimate['budget_s'] / 60:.1f} min, "
+                     f"{recipe.estimate.get('training_budget_s', recipe.estimate['budget_s']) / 60:.1f} of it for "
+                     f"training)")
     lines += [f"  traded: {t}" for t in recipe.traded]
     lines += [f"  note: {n}" for n in recipe.notes]
     return "\n".join(lines)

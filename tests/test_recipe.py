@@ -114,6 +114,48 @@ def test_crop_estimate_covers_the_folds_steps_and_predictions() -> None:
     assert est["crop_models_s"] == pytest.approx(2 * steps * est["crop_step_s"] + predictions, rel=1e-3, abs=0.2)
 
 
+def test_budget_bounds_the_whole_audit(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The stages outside training (decode, final pass, analysis, report) are projected first and the training gets
+    # the rest of the budget; when they would take most of it the training still keeps MIN_TRAINING_SHARE.
+    from detdiff import recipe as recipe_module
+
+    wh = np.random.default_rng(6).uniform(15, 80, (400, 2))
+    config = load_config(overrides={"recipe": {"budget_minutes": 2, "min_budget_minutes": 0}})
+    _, recipe = fit_recipe(_dataset(wh), config, measure=True)
+    est = recipe.estimate
+    assert est["budget_s"] == 120.0 and est["other_stages_s"] > 0
+    assert est["training_budget_s"] == pytest.approx(120.0 - est["other_stages_s"], abs=0.1)
+    assert any("whole audit" in n and "for training" in n for n in recipe.notes), recipe.notes
+    assert "of it for training" in format_recipe(recipe)
+    monkeypatch.setattr(recipe_module, "other_stage_seconds", lambda *args: 110.0)
+    _, recipe = fit_recipe(_dataset(wh), config, measure=True)
+    assert recipe.estimate["training_budget_s"] == pytest.approx(120.0 * recipe_module.MIN_TRAINING_SHARE)
+    assert any("the audit will take longer" in n for n in recipe.notes), recipe.notes
+
+
+def test_time_the_detector_leaves_goes_back_to_the_crop_models(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Steps timed at 1 s each (monkeypatched) make the arithmetic exact: 200 s of training, the crop models capped at
+    # 40% (80 s: 8.8 of 9-step epochs), the detector's epochs cut in steps of 0.8 to fit the other 120 s; what that
+    # leaves is spent on more crop-model epochs, and the total stays within the budget.
+    from detdiff import recipe as recipe_module
+
+    monkeypatch.setattr(recipe_module, "measure_step_seconds", lambda *args, **kwargs: 1.0)
+    monkeypatch.setattr(recipe_module, "measure_crop_seconds", lambda *args, **kwargs: (1.0, 0.0))
+    monkeypatch.setattr(recipe_module, "other_stage_seconds", lambda *args: 0.0)
+    wh = np.random.default_rng(7).uniform(40, 80, (400, 2))
+    config = load_config(overrides={"recipe": {"budget_minutes": 200 / 60, "min_budget_minutes": 0},
+                                    "data": {"image_size": 256, "tile_scale": 0},
+                                    "train": {"precision": "float32"}, "crossfit": {"precision": "float32"}})
+    resolved, recipe = fit_recipe(_dataset(wh), config, measure=True)
+    est, epochs = recipe.estimate, resolved["crossfit"]["epochs"]
+    assert est["crop_step_s"] == 1.0 and resolved["train"]["epochs"] < config["recipe"]["max_epochs"]
+    assert 80 / 9 < epochs <= config["recipe"]["max_crop_epochs"]
+    assert est["crop_models_s"] == pytest.approx(9 * epochs)
+    assert est["detector_training_s"] + est["crop_models_s"] <= 200.0
+    assert est["detector_training_s"] + est["crop_models_s"] > 200.0 - 9 * 0.1 - 1e-6        # nothing left unused
+    assert any("left over" in n for n in recipe.notes), recipe.notes
+
+
 def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:
     wh = np.random.default_rng(3).uniform(15, 80, (400, 2))
     ds = _dataset(wh)

@@ -40,14 +40,14 @@ kept as given. Each choice comes with one line of reason. The recipe is printed 
   and the median taken, the crop estimate read 1.3-2.0x low on seven of eight validity audits and the audits ran up
   to 1.32x their budget. The crop models judge every box at full resolution whatever the view, so they are served
   first: they get the time their epochs want, up to ``1 - recipe.detector_share`` of the training's time (over
-  it, their epochs shrink, down to ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest: over it, the
-  view shrinks first (down to ``recipe.min_view``; a detector needs its steps more than its pixels), then the epochs
-  (down to ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by 32 px, up to
-  ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the smallest
-  objects. Where the crop models' epochs were cut and the detector's trades (in steps: 32 px, 0.8x epochs) leave
-  part of its share unused, that time goes back to the crop models' epochs (up to the number wanted). The detector
-  is timed at the wanted view and at the chosen one; sizes between are estimated in proportion to the pixels.
-  Every trade is said.
+  it, their epochs shrink, down to ``recipe.min_crop_epochs``, fractions allowed). The detector gets the rest:
+  over it, the view shrinks first (down to ``recipe.min_view``; a detector needs its steps more than its pixels),
+  then the epochs (down to ``recipe.min_epochs``). When the detector's share leaves time over, the view grows (by
+  32 px, up to ``recipe.max_view`` and the largest image) while the estimate stays within it: more pixels for the
+  smallest objects. Where the crop models' epochs were cut and the detector's trades (in steps: 32 px, 0.8x
+  epochs) leave part of its share unused, that time goes back to the crop models' epochs (up to the number
+  wanted). The detector is timed at the wanted view and at the chosen one; sizes between are estimated in
+  proportion to the pixels. Every trade is said.
 * ``data.tile_scale``: boxes still under ``recipe.min_object_px`` in the view get tiles of their image enlarged
   until they reach it (:mod:`detdiff.data.views`), at most ``data.tile_scale`` tile px per original px. After the
   view is fitted, the largest scale of ``recipe.max_tile_scale * 0.75^k`` whose tiles fit the detector's share of
@@ -574,7 +574,8 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
         measure(int(data["image_size"]))
     det_s = detector_seconds()
     if crossfit["enabled"] and auto_crop and float(crossfit["epochs"]) < wanted_crop and det_s < detector_budget:
-        more = min(wanted_crop, math.floor(10 * (float(crossfit["epochs"]) + (detector_budget - det_s) / per_epoch)) / 10)
+        spare_epochs = (detector_budget - det_s) / per_epoch
+        more = min(wanted_crop, math.floor(10 * (float(crossfit["epochs"]) + spare_epochs)) / 10)
         if more > float(crossfit["epochs"]):        # the detector's share left over goes back to the crop models
             recipe.notes.append(f"crossfit.epochs {crossfit['epochs']} -> {more} with the time the detector's share "
                                 f"left over")
@@ -586,8 +587,9 @@ def _fit_budget(dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, im
                             "budget_s": round(budget, 1), "other_stages_s": round(other, 1),
                             "training_budget_s": round(training, 1)})
     if det_s + crop_s > training * 1.05:
-        recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over its {training / 60:.1f} "
-                            f"min of the budget, with nothing left to trade; raise --budget or set smaller values")
+        recipe.notes.append(f"the training is estimated at {(det_s + crop_s) / 60:.1f} min, over its "
+                            f"{training / 60:.1f} min of the budget, with nothing left to trade; raise --budget or "
+                            f"set smaller values")
 
 
 def _training_budget(recipe: Recipe, cfg: dict[str, Any], budget: float, other: float, tiled: float) -> float:

@@ -28,8 +28,8 @@ def grouped_nms(boxes: torch.Tensor, scores: torch.Tensor, groups: torch.Tensor,
     descending: the kept set of :func:`torchvision.ops.batched_nms`.
 
     On CPU ``batched_nms`` falls back, above 4,000 boxes, to a loop over the groups that scans every box once per
-    group: on the final pass of an 800-image aerial audit (about 30,000 candidates and 480 groups a batch) it took
-    9.6 of the pass's 67 s. Here the boxes are sorted by group once and cut into blocks of whole groups of about
+    group: on the final pass of an 800-image aerial audit (up to 32,000 candidates and 480 groups a batch) it took
+    9.6 of the pass's 94 s under cProfile. Here the boxes are sorted by group once and cut into blocks of whole groups of about
     :data:`NMS_BLOCK` boxes; within a block each group is moved by its own offset so that no two groups overlap
     (torchvision's "coordinate trick", in float64 so that the offsets keep the boxes' precision) and one
     :func:`torchvision.ops.nms` call suppresses the block.

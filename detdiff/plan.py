@@ -288,6 +288,11 @@ def decode_workers(images: int) -> int:
     return 1 if images < 4 * workers else max(1, min(workers, available_cores()))
 
 
+def decode_seconds(warm: Warmup, work: np.ndarray) -> float:
+    """Seconds to decode every image: the warm-up's seconds per unit of decode ``work``, over the decode workers."""
+    return warm.decode_s_per_work * float(work.sum()) / decode_workers(len(work))
+
+
 def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: Recipe, warm: Warmup,
              work: np.ndarray, boxes: int, detections: float) -> None:
     """Seconds per stage from the warm-up's measurements and the audit's step counts."""
@@ -297,7 +302,7 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
     images, train, cfg = dataset.num_images, config["train"], config["crossfit"]
     workers = decode_workers(images)
     decoded = _complete_cache(dataset, config, plan.rundir)
-    plan.seconds["decode"] = 0.0 if decoded else warm.decode_s_per_work * float(work.sum()) / workers
+    plan.seconds["decode"] = 0.0 if decoded else decode_seconds(warm, work)
     plan.seconds_basis["decode"] = ("a complete cache is there" if decoded else
                                     f"{warm.sample_images} images decoded in {warm.decode_seconds:.2f} s, scaled by "
                                     f"decoded pixels to {images} images over {workers} worker(s)")
@@ -319,8 +324,7 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
         # the places judged for an unannotated object: their images decoded again (reduced by the smallest box, as
         # detdiff.crossfit.places does) and up to crossfit.places_per_image places per image predicted
         places = int(cfg["places_per_image"]) * images
-        place_decode = warm.decode_s_per_work * float(
-            decode_work(dataset, 0, bool(config["data"]["reduced_decode"])).sum()) / workers
+        place_decode = decode_seconds(warm, decode_work(dataset, 0, bool(config["data"]["reduced_decode"])))
         if warm.crop_step_s is not None:
             plan.seconds["crop models"] = (crop_steps * warm.crop_step_s + (2 * boxes + places) * warm.predict_s_per_row
                                            + place_decode)

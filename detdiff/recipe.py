@@ -617,7 +617,7 @@ def other_stage_seconds(dataset: CocoDataset, config: dict[str, Any], images: in
     :data:`FORWARD_SHARE_OF_STEP` of a timed training step per image, over the whole views and the tiles at
     ``tile_scale``."""
     from detdiff.data.cache_shards import decode_work
-    from detdiff.plan import DETECTIONS_PER_BOX, after_training_seconds, cache_options, decode_workers
+    from detdiff.plan import DETECTIONS_PER_BOX, after_training_seconds, cache_options, decode_seconds
     from detdiff.plan_warmup import run_warmup
 
     size = int(config["data"]["image_size"])
@@ -627,7 +627,7 @@ def other_stage_seconds(dataset: CocoDataset, config: dict[str, Any], images: in
     views = images + tile_count(dataset, size, tile_scale, float(config["recipe"]["min_object_px"]))
     detections = min(DETECTIONS_PER_BOX * boxes, float(config["eval"]["max_detections"]) * images)
     after, _ = after_training_seconds(dataset, config, warm, views, boxes, detections)
-    return warm.decode_s_per_work * float(work.sum()) / decode_workers(images) + sum(after.values())
+    return decode_seconds(warm, work) + sum(after.values())
 
 
 def tile_reason(dataset: CocoDataset, size: int, cap: float, target: float) -> str:

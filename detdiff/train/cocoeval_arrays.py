@@ -9,7 +9,7 @@ replaces only that loop by one over detections, the thresholds and ground truths
 the same rules: a ground truth already matched is skipped unless it is a crowd; among the free ones at IoU >= the
 threshold (capped at 1 - 1e-10) the highest IoU wins, the later one on a tie; ground truths that are not ignored
 are preferred to ignored ones. Small image-category pairs go to the original loop, which is faster there.
-``tests/test_evaluate.py`` checks that both give the same ``evalImgs`` and the same ``eval`` arrays.
+``tests/test_cocoeval_arrays.py`` checks that both give the same ``evalImgs`` and the same ``eval`` arrays.
 """
 
 from __future__ import annotations

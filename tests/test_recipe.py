@@ -145,7 +145,8 @@ def test_time_the_detector_leaves_goes_back_to_the_crop_models(monkeypatch: pyte
     wh = np.random.default_rng(7).uniform(40, 80, (400, 2))
     config = load_config(overrides={"recipe": {"budget_minutes": 200 / 60, "min_budget_minutes": 0},
                                     "data": {"image_size": 256, "tile_scale": 0},
-                                    "train": {"precision": "float32"}, "crossfit": {"precision": "float32"}})
+                                    "train": {"precision": "float32"},
+                                    "crossfit": {"precision": "float32", "folds": 3}})
     resolved, recipe = fit_recipe(_dataset(wh), config, measure=True)
     est, epochs = recipe.estimate, resolved["crossfit"]["epochs"]
     assert est["crop_step_s"] == 1.0 and resolved["train"]["epochs"] < config["recipe"]["max_epochs"]
@@ -156,13 +157,45 @@ def test_time_the_detector_leaves_goes_back_to_the_crop_models(monkeypatch: pyte
     assert any("left over" in n for n in recipe.notes), recipe.notes
 
 
+def test_a_cut_budget_gives_the_crop_models_two_folds_and_twice_the_epochs(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Steps timed at 1 s each (monkeypatched): 400 boxes in batches of 128 make an epoch of three folds 3 x 3 steps
+    # (each model trains on 267 boxes) and one of two folds 2 x 2 steps (200 boxes each). The crop models' 40% of
+    # 200 s buys 8.9 epochs of three folds, 20 of two; the 30 wanted do not fit either way.
+    from detdiff import recipe as recipe_module
+
+    monkeypatch.setattr(recipe_module, "measure_step_seconds", lambda *args, **kwargs: 1.0)
+    monkeypatch.setattr(recipe_module, "measure_crop_seconds", lambda *args, **kwargs: (1.0, 0.0))
+    monkeypatch.setattr(recipe_module, "other_stage_seconds", lambda *args: 0.0)
+    wh = np.random.default_rng(7).uniform(40, 80, (400, 2))
+    overrides = {"recipe": {"budget_minutes": 200 / 60, "min_budget_minutes": 0},
+                 "data": {"image_size": 256, "tile_scale": 0}, "train": {"precision": "float32"},
+                 "crossfit": {"precision": "float32", "batch_size": 128}}
+    resolved, recipe = fit_recipe(_dataset(wh), load_config(overrides=overrides), measure=True)
+    assert resolved["crossfit"]["folds"] == 2 and recipe.settings["crossfit.folds"] == 2
+    assert recipe_module.crop_epoch_seconds(2, 400, 128, 1.0) == 4.0
+    assert recipe_module.crop_epoch_seconds(3, 400, 128, 1.0) == 9.0
+    assert resolved["crossfit"]["epochs"] >= 20.0
+    assert recipe.estimate["crop_models_s"] == pytest.approx(4 * resolved["crossfit"]["epochs"])
+    assert "crossfit.folds 3 -> 2 for the budget" in recipe.traded
+    assert "8.9 epochs of 3 folds" in recipe.reasons["crossfit.folds"], recipe.reasons["crossfit.folds"]
+    overrides["crossfit"]["folds"] = 3                       # a number given is kept
+    kept, recipe3 = fit_recipe(_dataset(wh), load_config(overrides=overrides), measure=True)
+    assert kept["crossfit"]["folds"] == 3 and 80 / 9 <= kept["crossfit"]["epochs"] < 20.0
+    assert not any(t.startswith("crossfit.folds") for t in recipe3.traded)
+    overrides["crossfit"].update(folds="auto", epochs=6)     # pinned epochs pin the crop models' work: three folds
+    pinned, _ = fit_recipe(_dataset(wh), load_config(overrides=overrides), measure=True)
+    assert pinned["crossfit"]["folds"] == 3 and pinned["crossfit"]["epochs"] == 6
+
+
 def test_budget_trades_the_view_first_then_epochs_and_says_so() -> None:
     wh = np.random.default_rng(3).uniform(15, 80, (400, 2))
     ds = _dataset(wh)
     config = load_config(overrides={"recipe": {"budget_minutes": 0.0001, "max_view": 256, "min_budget_minutes": 0}})
     resolved, recipe = fit_recipe(ds, config, measure=True)
     keys = [t.split()[0] for t in recipe.traded]     # crop models first, then the detector's view, its epochs, tiles
-    assert keys == ["crossfit.epochs", "data.image_size", "train.epochs", "data.tile_scale"], recipe.traded
+    assert keys == ["crossfit.folds", "crossfit.epochs", "data.image_size", "train.epochs", "data.tile_scale"], \
+        recipe.traded
+    assert resolved["crossfit"]["folds"] == 2
     assert resolved["data"]["tile_scale"] == 0
     assert resolved["data"]["image_size"] == config["recipe"]["min_view"]
     assert resolved["train"]["epochs"] == config["recipe"]["min_epochs"]

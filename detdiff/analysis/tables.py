@@ -171,7 +171,7 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
         checks = {kind: self_check.summary(kind, cals[kind], items=counts[kind],
                                            listed_p=lists[kind]["p_fault"].to_numpy(dtype=np.float64), level=level)
                   for kind in self_check.FAULT_KINDS}
-        checks["missing_box"]["probe_hits"] = checks["missing_box"]["probes"]
+        checks["missing_box"]["probe_proposals"] = checks["missing_box"]["probes"]
         checks["missing_box"]["probes"] = int(len(missing_rows))
         if image_cal is not None:
             checks["missing_box"] |= self_check.image_auroc_fields(image_cal, checks["missing_box"].get("auroc"))

@@ -372,6 +372,9 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
     object (:class:`Places`), each by the fold model of its image.
     """
     cfg, flips, seed = config["crossfit"], str(config["train"]["flips"]), int(config["train"]["seed"])
+    if str(cfg["folds"]).strip().lower() == "auto":
+        raise ValueError("crossfit.folds is 'auto': the recipe (detdiff.recipe.fit_recipe) resolves it before the "
+                         "cross-fit; pass a number to call cross_fit directly")
     folds = int(cfg["folds"])
     if folds < 2:
         raise ValueError(f"crossfit.folds must be at least 2, got {folds}")

@@ -22,9 +22,9 @@ def _xyxy(xywh: np.ndarray) -> torch.Tensor:
 
 def _scene(seed: int = 0, images: int = 1200):
     """Each image has one annotated box at PROBE_AT (a probe in a quarter of the images) and one more beside it;
-    another quarter hold an unannotated object at MISSING_AT. A missing object (probe or real) draws a proposal that covers it
-    (two px of jitter) with probability 0.6 and a near miss (shifted 25 px: IoU 0.23) with probability 0.3, both
-    scored like objects; four background proposals per image, far from every object, score lower."""
+    another quarter hold an unannotated object at MISSING_AT. A missing object (probe or real) draws a proposal that
+    covers it (two px of jitter) with probability 0.6 and a near miss (shifted 25 px: IoU 0.23) with probability 0.3,
+    both scored like objects; four background proposals per image, far from every object, score lower."""
     rng = np.random.default_rng(seed)
     coco = {"images": [{"id": i + 1, "file_name": f"{i}.jpg", "width": 640, "height": 480} for i in range(images)],
             "categories": [{"id": 1, "name": "thing"}],

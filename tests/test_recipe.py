@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pytest
 
@@ -133,21 +135,28 @@ def test_budget_bounds_the_whole_audit(monkeypatch: pytest.MonkeyPatch) -> None:
     assert any("the audit will take longer" in n for n in recipe.notes), recipe.notes
 
 
-def test_time_the_detector_leaves_goes_back_to_the_crop_models(monkeypatch: pytest.MonkeyPatch) -> None:
-    # Steps timed at 1 s each (monkeypatched) make the arithmetic exact: 200 s of training, the crop models capped at
-    # 40% (80 s: 8.8 of 9-step epochs), the detector's epochs cut in steps of 0.8 to fit the other 120 s; what that
-    # leaves is spent on more crop-model epochs, and the total stays within the budget.
+def _one_second_steps(monkeypatch: pytest.MonkeyPatch, crossfit: dict) -> tuple[Any, CocoDataset, dict]:
+    """Every timed step 1 s and the stages outside training none (monkeypatched), so the arithmetic is exact: the
+    recipe module, 400 boxes of 40-80 px in 40 images, and overrides for a 200 s budget at a 256 px view without tiles
+    (``crossfit`` added to the crop models' section)."""
     from detdiff import recipe as recipe_module
 
     monkeypatch.setattr(recipe_module, "measure_step_seconds", lambda *args, **kwargs: 1.0)
     monkeypatch.setattr(recipe_module, "measure_crop_seconds", lambda *args, **kwargs: (1.0, 0.0))
     monkeypatch.setattr(recipe_module, "other_stage_seconds", lambda *args: 0.0)
-    wh = np.random.default_rng(7).uniform(40, 80, (400, 2))
-    config = load_config(overrides={"recipe": {"budget_minutes": 200 / 60, "min_budget_minutes": 0},
-                                    "data": {"image_size": 256, "tile_scale": 0},
-                                    "train": {"precision": "float32"},
-                                    "crossfit": {"precision": "float32", "folds": 3}})
-    resolved, recipe = fit_recipe(_dataset(wh), config, measure=True)
+    overrides = {"recipe": {"budget_minutes": 200 / 60, "min_budget_minutes": 0},
+                 "data": {"image_size": 256, "tile_scale": 0}, "train": {"precision": "float32"},
+                 "crossfit": {"precision": "float32", **crossfit}}
+    return recipe_module, _dataset(np.random.default_rng(7).uniform(40, 80, (400, 2))), overrides
+
+
+def test_time_the_detector_leaves_goes_back_to_the_crop_models(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Steps timed at 1 s each (monkeypatched) make the arithmetic exact: 200 s of training, the crop models capped at
+    # 40% (80 s: 8.8 of 9-step epochs), the detector's epochs cut in steps of 0.8 to fit the other 120 s; what that
+    # leaves is spent on more crop-model epochs, and the total stays within the budget.
+    _, dataset, overrides = _one_second_steps(monkeypatch, {"folds": 3})
+    config = load_config(overrides=overrides)
+    resolved, recipe = fit_recipe(dataset, config, measure=True)
     est, epochs = recipe.estimate, resolved["crossfit"]["epochs"]
     assert est["crop_step_s"] == 1.0 and resolved["train"]["epochs"] < config["recipe"]["max_epochs"]
     assert 80 / 9 < epochs <= config["recipe"]["max_crop_epochs"]
@@ -161,16 +170,8 @@ def test_a_cut_budget_gives_the_crop_models_two_folds_and_twice_the_epochs(monke
     # Steps timed at 1 s each (monkeypatched): 400 boxes in batches of 128 make an epoch of three folds 3 x 3 steps
     # (each model trains on 267 boxes) and one of two folds 2 x 2 steps (200 boxes each). The crop models' 40% of
     # 200 s buys 8.9 epochs of three folds, 20 of two; the 30 wanted do not fit either way.
-    from detdiff import recipe as recipe_module
-
-    monkeypatch.setattr(recipe_module, "measure_step_seconds", lambda *args, **kwargs: 1.0)
-    monkeypatch.setattr(recipe_module, "measure_crop_seconds", lambda *args, **kwargs: (1.0, 0.0))
-    monkeypatch.setattr(recipe_module, "other_stage_seconds", lambda *args: 0.0)
-    wh = np.random.default_rng(7).uniform(40, 80, (400, 2))
-    overrides = {"recipe": {"budget_minutes": 200 / 60, "min_budget_minutes": 0},
-                 "data": {"image_size": 256, "tile_scale": 0}, "train": {"precision": "float32"},
-                 "crossfit": {"precision": "float32", "batch_size": 128}}
-    resolved, recipe = fit_recipe(_dataset(wh), load_config(overrides=overrides), measure=True)
+    recipe_module, dataset, overrides = _one_second_steps(monkeypatch, {"batch_size": 128})
+    resolved, recipe = fit_recipe(dataset, load_config(overrides=overrides), measure=True)
     assert resolved["crossfit"]["folds"] == 2 and recipe.settings["crossfit.folds"] == 2
     assert recipe_module.crop_epoch_seconds(2, 400, 128, 1.0) == 4.0
     assert recipe_module.crop_epoch_seconds(3, 400, 128, 1.0) == 9.0
@@ -179,11 +180,11 @@ def test_a_cut_budget_gives_the_crop_models_two_folds_and_twice_the_epochs(monke
     assert "crossfit.folds 3 -> 2 for the budget" in recipe.traded
     assert "8.9 epochs of 3 folds" in recipe.reasons["crossfit.folds"], recipe.reasons["crossfit.folds"]
     overrides["crossfit"]["folds"] = 3                       # a number given is kept
-    kept, recipe3 = fit_recipe(_dataset(wh), load_config(overrides=overrides), measure=True)
+    kept, recipe3 = fit_recipe(dataset, load_config(overrides=overrides), measure=True)
     assert kept["crossfit"]["folds"] == 3 and 80 / 9 <= kept["crossfit"]["epochs"] < 20.0
     assert not any(t.startswith("crossfit.folds") for t in recipe3.traded)
     overrides["crossfit"].update(folds="auto", epochs=6)     # pinned epochs pin the crop models' work: three folds
-    pinned, _ = fit_recipe(_dataset(wh), load_config(overrides=overrides), measure=True)
+    pinned, _ = fit_recipe(dataset, load_config(overrides=overrides), measure=True)
     assert pinned["crossfit"]["folds"] == 3 and pinned["crossfit"]["epochs"] == 6
 
 

@@ -110,3 +110,18 @@ def load_saved_config(path: str | Path) -> dict:
 def save_config(config: dict, path: str | Path) -> None:
     """Write the config actually used, so a run can be repeated exactly."""
     write_text_atomic(path, yaml.safe_dump(config, sort_keys=False))
+
+
+def time_limit_seconds(config: dict[str, Any]) -> float | None:
+    """``train.time_limit`` (minutes of detector training; the recipe sets it to the detector's share of the budget)
+    in seconds, or None: no limit (``none``, or ``auto`` that no recipe resolved)."""
+    value = config["train"].get("time_limit")
+    if value is None or str(value).lower() in ("auto", "none"):
+        return None
+    try:
+        minutes = float(value)
+    except (TypeError, ValueError):
+        raise ConfigError(f"train.time_limit must be minutes, none or auto, got {value!r}") from None
+    if minutes <= 0:
+        raise ConfigError(f"train.time_limit must be positive minutes, got {value!r}")
+    return 60.0 * minutes

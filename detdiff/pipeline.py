@@ -153,6 +153,14 @@ def cross_fit_run(dataset: CocoDataset, trained: CocoDataset, cache, config: dic
         store.unlink(missing_ok=True)
 
 
+def time_limit_line(epochs_done: int, epochs_planned: int, config: dict) -> str:
+    """What the time limit did to the detector's training, for the terminal."""
+    limit = float(config["train"]["time_limit"])
+    return (f"detdiff: training ended after {epochs_done} of {epochs_planned} epochs to stay within "
+            f"train.time_limit {limit:g} min (the epochs ran slower than the recipe timed them; the learning-rate "
+            f"schedule was re-fitted to the shorter run)")
+
+
 def run_overrides(*, image_size: int | None = None, epochs: int | None = None, batch_size: int | None = None,
                   device: str | None = None, seed: int | None = None, threads: int | None = None,
                   flips: str | None = None, budget: float | None = None, cache_codec: str | None = None) -> dict:
@@ -330,6 +338,8 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
             write_json_atomic(rundir / PROBES_FILE, probes_record(dataset, missing_probes))
         result = train_and_log(trained, cache, config, rundir, resume=resume, progress=progress and dist.is_main)
     timings["train_s"] = time.perf_counter() - t1
+    if dist.is_main and result.epochs_done < result.epochs_planned:
+        print(time_limit_line(result.epochs_done, result.epochs_planned, config), file=sys.stderr, flush=True)
     shutdown()                                   # evaluation, analysis and report run on the main process only
     if not dist.is_main:
         return AuditResult(rundir, None, {}, "")
@@ -350,6 +360,7 @@ def run_audit(annotations: str | Path, images_dir: str | Path, rundir: str | Pat
         "num_categories": dataset.num_classes, "num_usable_images": int(cache.usable.sum()),
         "unusable_images": cache.problems, "config": config, "device": str(result.device),
         "world_size": dist.world_size, "epochs_done": result.epochs_done,
+        "epochs_planned": result.epochs_planned,
         "train_seconds": result.seconds, "images_per_second": result.images_per_second,
         "data_loading_share": result.data_share, "timings": timings,
     }

@@ -29,6 +29,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from detdiff.config import time_limit_seconds
 from detdiff.data.coco import CocoDataset
 from detdiff.stages import InsufficientSpaceError, size_text
 
@@ -315,6 +316,11 @@ def _seconds(plan: Plan, dataset: CocoDataset, config: dict[str, Any], recipe: R
     else:
         plan.seconds["detector"] = float(recipe.estimate.get("detector_training_s", 0.0))
         plan.seconds_basis["detector"] = "the recipe's estimate (no usable image in the sample)"
+    limit = time_limit_seconds(config)
+    if limit is not None and plan.seconds["detector"] > limit:
+        plan.seconds["detector"] = limit
+        plan.seconds_basis["detector"] += (f"; capped by train.time_limit {limit / 60:g} min (the epochs that fit "
+                                           f"are trained)")
     if cfg["enabled"]:
         folds = int(cfg["folds"])
         fold = assign_folds(images, folds, int(train["seed"]))[dataset.ann_image_index]

@@ -433,12 +433,33 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
         _say_small_objects(dataset, config, recipe)
     if _is_auto(config["data"].get("cache_codec", AUTO)):
         config["data"]["cache_codec"], recipe.reasons["data.cache_codec"] = choose_cache_codec(dataset, config)
-    for key in ("data.image_size", "data.tile_scale", "data.cache_codec", "train.epochs", "train.precision",
-                "crossfit.epochs", "crossfit.folds", "crossfit.precision", "model.anchor_shapes"):
+    if _is_auto(config["train"].get("time_limit", AUTO)):
+        config["train"]["time_limit"], recipe.reasons["train.time_limit"] = choose_time_limit(config, recipe,
+                                                                                            auto_epochs)
+    for key in ("data.image_size", "data.tile_scale", "data.cache_codec", "train.epochs", "train.time_limit",
+                "train.precision", "crossfit.epochs", "crossfit.folds", "crossfit.precision", "model.anchor_shapes"):
         section, name = key.split(".")
         recipe.settings[key] = config[section][name]
         recipe.reasons.setdefault(key, "given in the config or on the command line")
     return config, recipe
+
+
+def choose_time_limit(config: dict[str, Any], recipe: Recipe, auto_epochs: bool) -> tuple[float | str, str]:
+    """``train.time_limit`` for ``auto``: the detector's share of the budget (the training's share less the crop
+    models' estimate), in minutes, where the recipe fitted the epochs to the budget; ``none`` otherwise. The
+    projection rests on steps timed for seconds, and a shared machine runs a long training anywhere from 0.8x to
+    1.4x that pace (detector measured / projected on the validity audits): the limit makes the budget hold."""
+    estimate = recipe.estimate
+    if not auto_epochs or "training_budget_s" not in estimate:
+        why = "train.epochs is given" if not auto_epochs else "no budget was fitted"
+        return "none", f"none: {why}, so the epochs are not cut for time"
+    minutes = round(max(estimate["training_budget_s"] - estimate["crop_models_s"],
+                        estimate["detector_training_s"]) / 60.0, 1)
+    floor = min(int(config["train"]["epochs"]), int(config["recipe"]["min_epochs"]))
+    estimated = estimate["detector_training_s"] / 60.0
+    return minutes, (f"{minutes:g} min: the detector's share of the budget (estimated {estimated:.1f} min); if its "
+                     f"epochs run slower than timed, training ends at the last epoch that fits (not under {floor}) "
+                     f"and the learning-rate schedule is re-fitted to it")
 
 
 def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe | None = None) -> dict[str, Any]:

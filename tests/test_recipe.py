@@ -164,6 +164,12 @@ def test_time_the_detector_leaves_goes_back_to_the_crop_models(monkeypatch: pyte
     assert est["detector_training_s"] + est["crop_models_s"] <= 200.0
     assert est["detector_training_s"] + est["crop_models_s"] > 200.0 - 9 * 0.1 - 1e-6        # nothing left unused
     assert any("left over" in n for n in recipe.notes), recipe.notes
+    # the detector's share of the budget bounds its training: 200 s less the crop models' estimate, in minutes
+    assert resolved["train"]["time_limit"] == pytest.approx(round((200.0 - est["crop_models_s"]) / 60, 1))
+    assert recipe.settings["train.time_limit"] == resolved["train"]["time_limit"]
+    overrides["train"]["epochs"] = 5                      # epochs given: they are not cut for time
+    pinned, pinned_recipe = fit_recipe(dataset, load_config(overrides=overrides), measure=True)
+    assert pinned["train"]["time_limit"] == "none" and "given" in pinned_recipe.reasons["train.time_limit"]
 
 
 def test_a_cut_budget_gives_the_crop_models_two_folds_and_twice_the_epochs(monkeypatch: pytest.MonkeyPatch) -> None:

@@ -241,6 +241,19 @@ def test_terminal_summary(report):
     assert "\x1b" not in text and len(text.splitlines()) <= 12
 
 
+def test_a_run_the_time_limit_cut_says_so_in_the_summary_and_the_settings(tmp_path):
+    from detdiff.report.sections import _epochs_trained
+
+    rundir = make_run_folder(tmp_path)
+    info = json.loads((rundir / "run.json").read_text())
+    info["config"]["train"]["time_limit"] = 10.5
+    info.update(epochs_done=2, epochs_planned=3)
+    (rundir / "run.json").write_text(json.dumps(info))
+    assert "training ended after 2 of 3 epochs to keep to train.time_limit (10.5 min)" in terminal_summary(rundir)
+    assert _epochs_trained(info) == "2 of 3 (train.time_limit reached)"
+    assert _epochs_trained({"epochs_done": 3, "epochs_planned": 3}) == "3"
+
+
 def test_sourcing_sentences_carry_their_numbers(report):
     rundir, _ = report
     advice = sourcing_advice(RunFolder.load(rundir))

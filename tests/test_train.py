@@ -358,13 +358,51 @@ def test_flipped_training_logs_boxes_in_original_coordinates(tiny, tmp_path, fli
     assert (logged > 0.05).mean() > 0.5       # not trivially zero: the boxes overlap where they should
 
 
+def test_epochs_within_keeps_the_pace_of_the_finished_epochs() -> None:
+    from detdiff.train.hooks import epochs_within
+
+    # exact arithmetic: 3 epochs took 30 s (10 s each); a 75 s limit leaves 45 s, room for 4 more: 7 in all
+    assert epochs_within(75.0, 30.0, 3, 17, 2) == 7
+    assert epochs_within(75.0, 30.0, 3, 17, 8) == 8           # never under the floor (recipe.min_epochs)
+    assert epochs_within(1000.0, 30.0, 3, 17, 2) == 17        # never more than planned
+    assert epochs_within(10.0, 30.0, 3, 17, 2) == 3           # never fewer than done
+    assert epochs_within(75.0, 0.0, 0, 17, 2) == 17           # nothing done yet: the plan stands
+
+
+def test_a_time_limit_ends_training_at_the_epochs_that_fit_and_refits_the_schedule(tiny, tmp_path, monkeypatch):
+    from types import SimpleNamespace
+
+    from detdiff.train import hooks
+    from detdiff.train.optimizer import FINAL_LR_FACTOR
+
+    ds, cache, _ = tiny
+    ticks = iter(range(0, 10**6, 5))                          # a clock that advances 5 s per reading: 5 s an epoch
+    monkeypatch.setattr(hooks, "time", SimpleNamespace(perf_counter=lambda: float(next(ticks))))
+    config = _tiny_config(epochs=6, time_limit=0.25, warmup_iters=1)     # 15 s: 3 epochs of 6 fit
+    config["recipe"]["min_epochs"] = 2
+    result = train_and_log(ds, cache, config, tmp_path, progress=False)
+    assert (result.epochs_done, result.epochs_planned) == (3, 6)
+    assert finished_epochs(tmp_path / "log") == [0, 1, 2]
+    saved = load_checkpoint(tmp_path / "checkpoint.pt")
+    assert saved["epoch"] == 2 and saved["extra"]["time_limit_cut"] == {"from": 6, "to": 3}
+    assert saved["extra"]["train_seconds"] == pytest.approx(15.0)
+    lr = float(config["train"]["lr"])                        # the re-fitted cosine ends at its final share
+    assert [g["lr"] for g in saved["optimizer"]["param_groups"]] == pytest.approx([lr * FINAL_LR_FACTOR] * 2)
+    resumed = train_and_log(ds, cache, config, tmp_path, resume=True, progress=False)
+    assert (resumed.epochs_done, resumed.epochs_planned, resumed.epoch_seconds) == (3, 6, [])   # the cut stands
+    assert finished_epochs(tmp_path / "log") == [0, 1, 2]
+    config["recipe"]["min_epochs"] = 5                        # the floor holds even when the limit would cut more
+    floored = train_and_log(ds, cache, config, tmp_path / "floor", progress=False)
+    assert (floored.epochs_done, floored.epochs_planned) == (5, 6)
+
+
 def test_progress_bar_shows_one_rate() -> None:
     from types import SimpleNamespace
 
     from detdiff.train.hooks import ProgressHook
 
-    hook = ProgressHook(num_epochs=2)
-    hook.before_epoch(SimpleNamespace(images_in_epoch=8, epoch=0))
+    hook = ProgressHook()
+    hook.before_epoch(SimpleNamespace(images_in_epoch=8, epoch=0, epochs=2))
     ones = torch.ones(4)
     streams = SimpleNamespace(image={"num_pos": ones, "loc_sum": ones, "pos_sum": 2 * ones, "neg_sum": ones})
     hook.after_step(None, SimpleNamespace(image_index=np.arange(4)), streams)

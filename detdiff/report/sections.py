@@ -376,12 +376,20 @@ def _flatten(config: dict[str, Any], prefix: str = "") -> list[tuple[str, Any]]:
     return out
 
 
+def _epochs_trained(info: dict) -> str:
+    """Epochs done, with the planned count where the time limit ended training early."""
+    done, planned = info.get("epochs_done", ""), info.get("epochs_planned")
+    if isinstance(done, int) and isinstance(planned, int) and planned > done:
+        return f"{done} of {planned} (train.time_limit reached)"
+    return fmt(done)
+
+
 def _settings_section(page: Page) -> Markup:
     info = page.run.run
     seconds = info.get("train_seconds")
     facts = [("detdiff version", info.get("detdiff_version", "")), ("annotations", info.get("annotations", "")),
              ("images folder", info.get("images_dir", "")), ("device", info.get("device", "")),
-             ("epochs trained", fmt(info.get("epochs_done", ""))),
+             ("epochs trained", _epochs_trained(info)),
              ("training time", f"{fmt(seconds)} s" if isinstance(seconds, (int, float)) else ""),
              ("views per second (whole views and tiles)", fmt(info.get("images_per_second", ""))),
              ("report", f"top {page.top} per list, thumbnails {'on' if page.thumbnails else 'off'}")]

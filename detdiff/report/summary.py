@@ -27,6 +27,10 @@ def terminal_summary(rundir: str | Path) -> str:
              f"{info.get('num_annotations', len(run.objects))} boxes, "
              f"{info.get('num_categories', len(run.classes))} classes"]
     lines.append(f"Detector: AP50 {format_ap(run.metrics.get('AP50'))} (AP {format_ap(run.metrics.get('AP'))})")
+    done, planned = info.get("epochs_done"), info.get("epochs_planned")
+    if isinstance(done, int) and isinstance(planned, int) and done < planned:
+        lines.append(f"  training ended after {done} of {planned} epochs to keep to train.time_limit "
+                     f"({info['config']['train']['time_limit']} min); --budget MINUTES buys more")
     warning = run.quality_warning()
     if warning:
         lines.append(f"  WARNING: {plain(warning)}")

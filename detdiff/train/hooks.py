@@ -1,4 +1,5 @@
-"""Hooks: the side effects of training (the loss log, the checkpoint, the progress bar), kept out of the step.
+"""Hooks: the side effects of training (the loss log, the time limit, the checkpoint, the progress bar), kept out of
+the step.
 
 :func:`detdiff.train.loop.train_one_epoch` computes; each :class:`Hook` is called before an epoch, after every
 optimizer step, after an epoch and on an error, with the :class:`TrainState` it may look at (the split of
@@ -9,6 +10,7 @@ from __future__ import annotations
 
 import os
 import shutil
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,12 +26,15 @@ from detdiff.model.losses import LossStreams
 from detdiff.train import distributed as ddp
 from detdiff.train.batches import Batch
 from detdiff.train.checkpoint import save_checkpoint
+from detdiff.train.optimizer import warmup_cosine
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLogWriter, epoch_dir, merge_rank_epochs
 
 
 @dataclass
 class TrainState:
-    """Everything a hook may look at; ``epoch`` is 0-based, ``step`` counts optimizer steps of the run."""
+    """Everything a hook may look at; ``epoch`` is 0-based, ``step`` counts optimizer steps of the run, ``epochs`` is
+    the run's number of epochs (lowered by :class:`TimeLimitHook` when the time limit cuts it), ``seconds`` the
+    training seconds so far (earlier sessions of a resumed run included, where the checkpoint kept them)."""
 
     config: dict[str, Any]
     rundir: Path
@@ -42,6 +47,9 @@ class TrainState:
     step: int = 0
     batches_in_epoch: int = 0
     images_in_epoch: int = 0
+    epochs: int = 0
+    seconds: float = 0.0
+    cut_from: int | None = None                  # the planned epochs, once the time limit lowered them
 
 
 class Hook:
@@ -124,16 +132,63 @@ class LossLogHook(Hook):
         shutil.rmtree(f"{epoch_dir(self.log_dir, state.epoch, rank)}.tmp-{os.getpid()}", ignore_errors=True)
 
 
+def epochs_within(limit_s: float, seconds: float, done: int, planned: int, floor: int) -> int:
+    """The epochs a run may have in all to end within ``limit_s`` seconds of training: the ``done`` epochs took
+    ``seconds``; at their mean pace as many more as fit, never fewer than ``floor`` (nor ``done``), never more than
+    ``planned``."""
+    if done <= 0:
+        return planned
+    pace = seconds / done
+    more = int(max(0.0, limit_s - seconds) // pace) if pace > 0 else planned
+    return int(min(planned, max(done, floor, done + more)))
+
+
+class TimeLimitHook(Hook):
+    """Keeps the detector's training within ``limit_s`` seconds (``train.time_limit``: the detector's share of the
+    audit's budget) when its epochs run slower than the recipe timed them: after each epoch, the epochs that still
+    fit at the pace so far (:func:`epochs_within`, not under ``floor``); when fewer than planned, ``state.epochs``
+    is lowered and the warm-up + cosine schedule is re-fitted to end at the new last step, so the learning rate
+    still decays to its final share (it steps down to where the shorter schedule is). Runs after the loss log's
+    ``after_epoch`` and before the checkpoint's, which saves the cut. Every rank takes rank 0's decision."""
+
+    def __init__(self, limit_s: float, floor: int, warmup_steps: int) -> None:
+        self.limit_s, self.floor, self.warmup_steps = float(limit_s), int(floor), int(warmup_steps)
+        self.start = 0.0
+
+    def before_epoch(self, state: TrainState) -> None:
+        self.start = time.perf_counter()
+
+    def after_epoch(self, state: TrainState) -> None:
+        state.seconds += time.perf_counter() - self.start
+        epochs = int(ddp.broadcast_object(
+            epochs_within(self.limit_s, state.seconds, state.epoch + 1, state.epochs, self.floor), state.info))
+        if epochs < state.epochs:
+            state.cut_from = state.cut_from or state.epochs
+            state.epochs = epochs
+            refit_schedule(state.scheduler, self.warmup_steps, state.batches_in_epoch * epochs)
+
+
+def refit_schedule(scheduler: torch.optim.lr_scheduler.LambdaLR, warmup_steps: int, total_steps: int) -> None:
+    """Point ``scheduler`` (every parameter group) at the warm-up + cosine schedule of ``total_steps`` steps, and
+    set the groups' learning rates to its value at the current step."""
+    scheduler.lr_lambdas = [warmup_cosine(warmup_steps, total_steps) for _ in scheduler.optimizer.param_groups]
+    for group, base, factor in zip(scheduler.optimizer.param_groups, scheduler.base_lrs, scheduler.lr_lambdas):
+        group["lr"] = base * factor(scheduler.last_epoch)
+
+
 class CheckpointHook(Hook):
-    """Saves ``RUNDIR/checkpoint.pt`` on rank 0 after every epoch, once that epoch's log is in place."""
+    """Saves ``RUNDIR/checkpoint.pt`` on rank 0 after every epoch, once that epoch's log is in place, with the
+    training seconds so far and any cut of the epochs by the time limit (a resumed run keeps both)."""
 
     def __init__(self, path: Path, extra: dict[str, Any]) -> None:
         self.path, self.extra = path, extra
 
     def after_epoch(self, state: TrainState) -> None:
         if state.info.is_main:
+            cut = {} if state.cut_from is None else {"time_limit_cut": {"from": state.cut_from, "to": state.epochs}}
             save_checkpoint(self.path, model=state.model, optimizer=state.optimizer, scheduler=state.scheduler,
-                            epoch=state.epoch, config=state.config, extra=self.extra)
+                            epoch=state.epoch, config=state.config,
+                            extra={**self.extra, "train_seconds": state.seconds, **cut})
 
 
 class ProgressHook(Hook):
@@ -142,15 +197,14 @@ class ProgressHook(Hook):
     The rate is tqdm's own, averaged over the epoch so far (``smoothing=0``); the postfix holds the losses only.
     """
 
-    def __init__(self, num_epochs: int) -> None:
-        self.num_epochs = num_epochs
+    def __init__(self) -> None:
         self.bar: tqdm | None = None
         self.sums = np.zeros(3)
         self.seen = 0
 
     def before_epoch(self, state: TrainState) -> None:
         self.bar = tqdm(total=state.images_in_epoch, unit="view", leave=False, smoothing=0,
-                        desc=f"epoch {state.epoch + 1}/{self.num_epochs}")
+                        desc=f"epoch {state.epoch + 1}/{state.epochs}")
         self.sums[:] = 0.0
         self.seen = 0
 

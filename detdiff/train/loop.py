@@ -13,7 +13,9 @@ Reproducibility: ``torch.manual_seed(train.seed)`` before the model is built, th
 ``numpy.random.Generator(PCG64([seed, epoch]))``, deterministic torch algorithms on CPU, and a fixed thread
 count: the same seed and thread count give identical logged losses. A resumed run loads model, optimizer,
 scheduler and RNG states of the last finished epoch and redoes later epochs, so its log equals that of an
-uninterrupted run.
+uninterrupted run. A time limit (``train.time_limit``, :class:`detdiff.train.hooks.TimeLimitHook`) makes the number
+of epochs depend on the machine's pace: a run it cut ends earlier, with its learning-rate schedule re-fitted, and a
+resumed run keeps the cut.
 """
 
 from __future__ import annotations
@@ -28,7 +30,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from detdiff.config import ConfigError
+from detdiff.config import ConfigError, time_limit_seconds
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache
 from detdiff.model.detector import Detector
@@ -36,7 +38,8 @@ from detdiff.model.losses import LossStreams, compute_loss_streams
 from detdiff.train import distributed as ddp
 from detdiff.train.batches import Batch, BatchMaker
 from detdiff.train.checkpoint import CHECKPOINT_FILE, load_checkpoint, restore_rng_state, unwrap_model
-from detdiff.train.hooks import CheckpointHook, Hook, LossLogHook, ProgressHook, TrainState
+from detdiff.train.hooks import (CheckpointHook, Hook, LossLogHook, ProgressHook, TimeLimitHook, TrainState,
+                                 refit_schedule)
 from detdiff.train.loss_log import discard_epochs_after
 from detdiff.train.optimizer import build_optimizer, warmup_cosine
 from detdiff.train.resources import check_room_on_main, checkpoint_bytes, log_bytes, thread_count
@@ -66,6 +69,7 @@ class TrainResult:
     model: Detector
     resumed_from: int | None = None          # last finished epoch found in the checkpoint, None for a fresh run
     epoch_seconds: list[float] = field(default_factory=list)
+    epochs_planned: int = 0                  # train.epochs; more than epochs_done when the time limit cut them
     threads: int = 1
     world_size: int = 1
     device: str = "cpu"
@@ -211,7 +215,7 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
         optimizer, warmup_cosine(int(train_cfg["warmup_iters"]), steps * epochs))
     dataset_key = _dataset_key(dataset, usable)
 
-    start_epoch, resumed_from = 0, None
+    start_epoch, resumed_from, seconds, cut_from = 0, None, 0.0, None
     if resume and ckpt_path.is_file():
         payload = load_checkpoint(ckpt_path, map_location=info.device)
         if payload["extra"].get("dataset") != dataset_key:
@@ -228,6 +232,11 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
         restore_rng_state(payload["rng"])
         resumed_from = int(payload["epoch"])
         start_epoch = resumed_from + 1
+        seconds = float(payload["extra"].get("train_seconds", 0.0))
+        cut = payload["extra"].get("time_limit_cut")
+        if cut and int(cut["from"]) == epochs:              # the time limit's cut stands (not a longer --epochs)
+            cut_from, epochs = epochs, int(cut["to"])
+            refit_schedule(scheduler, int(train_cfg["warmup_iters"]), steps * epochs)
     if info.is_main:
         discard_epochs_after(log_dir, start_epoch - 1)
         if resumed_from is None:
@@ -235,14 +244,20 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
     ddp.barrier()
 
     wrapped = ddp.wrap_model(model, info)
-    state = TrainState(config, rundir, dataset, info, wrapped, optimizer, scheduler, step=start_epoch * steps)
-    hooks: list[Hook] = [LossLogHook(log_dir, dataset, info, config["log"]["unmatched_per_image"]),
-                         CheckpointHook(ckpt_path, {"dataset": dataset_key})]
+    state = TrainState(config, rundir, dataset, info, wrapped, optimizer, scheduler, step=start_epoch * steps,
+                       epochs=epochs, seconds=seconds, cut_from=cut_from)
+    hooks: list[Hook] = [LossLogHook(log_dir, dataset, info, config["log"]["unmatched_per_image"])]
+    limit = time_limit_seconds(config)
+    if limit is not None:
+        hooks.append(TimeLimitHook(limit, min(epochs, int(config["recipe"]["min_epochs"])),
+                                   int(train_cfg["warmup_iters"])))
+    hooks.append(CheckpointHook(ckpt_path, {"dataset": dataset_key}))
     if progress and info.is_main:
-        hooks.append(ProgressHook(epochs))
+        hooks.append(ProgressHook())
 
     epoch_seconds, data_seconds, images = [], 0.0, 0
-    for epoch in range(start_epoch, epochs):
+    epoch = start_epoch
+    while epoch < state.epochs:
         order = ddp.epoch_order(views, seed, epoch)
         batches = ddp.rank_batches(order, batch_size, info.rank, info.world_size)
         make_batch.set_epoch(epoch)
@@ -257,9 +272,12 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
         epoch_seconds.append(stats.seconds)
         data_seconds += stats.data_seconds
         images += len(order)
+        epoch += 1
     ddp.barrier()
     total = float(sum(epoch_seconds))
-    return TrainResult(epochs_done=epochs, seconds=total, images_per_second=images / total if total else 0.0,
+    return TrainResult(epochs_done=state.epochs, seconds=total, images_per_second=images / total if total else 0.0,
                        data_share=data_seconds / total if total else 0.0, model=model.eval(),
-                       resumed_from=resumed_from, epoch_seconds=epoch_seconds, threads=threads,
+                       resumed_from=resumed_from, epoch_seconds=epoch_seconds,
+                       epochs_planned=state.cut_from or state.epochs, threads=threads,
                        world_size=info.world_size, device=str(info.device))
+

@@ -68,7 +68,7 @@ def run_one(scenario: str, seed: int, num_images: int, out: Path, overrides: dic
     plan = run_info.get("plan_seconds") or {}
     return {"scenario": scenario, "seed": seed, "images": num_images, "generate_s": t1 - t0, "audit_s": t2 - t1,
             "AP50": metrics.get("AP50"), "AP50_small": metrics.get("AP50_small"), "timings": run_info.get("timings"),
-            "plan_seconds": plan, "plan_ratio": plan.get("ratio"),
+            "plan_seconds": plan, "plan_ratio": plan.get("ratio"), "epochs_done": run_info.get("epochs_done"),
             "recipe": json.loads((rundir / "recipe.json").read_text()).get("settings"), "scores": scores}
 
 
@@ -77,7 +77,7 @@ def print_run(result: dict) -> None:
     small = result["AP50_small"]
     print(f"\n== {result['scenario']} seed {result['seed']}: {result['images']} images, audit {result['audit_s'] / 60:.1f} min,"
           f" detector AP50 {result['AP50']:.3f} (small {'-' if small is None else f'{small:.3f}'}); view {recipe.get('data.image_size')},"
-          f" epochs {recipe.get('train.epochs')}, crop epochs {recipe.get('crossfit.epochs')}")
+          f" epochs {_epochs(result, recipe)}, crop epochs {recipe.get('crossfit.epochs')}")
     widths = [max(len(name) + 1, 7) for name, _, _ in COLUMNS]
     print(f"{'kind':<13}" + "".join(f"{name:>{w}}" for (name, _, _), w in zip(COLUMNS, widths)))
     for kind in ("wrong_class", "loose_box", "missing_box", "duplicate_box"):
@@ -88,6 +88,12 @@ def print_run(result: dict) -> None:
         verdict = "met" if value is not None and value == value and value >= goal else "NOT met"
         print(f"  goal {kind} {key} >= {goal}: {verdict} ({value if value is None else round(value, 3)})")
     print_plan(result.get("plan_seconds") or {})
+
+
+def _epochs(result: dict, recipe: dict) -> str:
+    """The detector's epochs: done, and planned where the time limit (train.time_limit) ended training early."""
+    done, planned = result.get("epochs_done"), recipe.get("train.epochs")
+    return f"{done} of {planned} (time limit)" if isinstance(done, int) and done < planned else f"{planned}"
 
 
 def print_plan(plan: dict) -> None:

@@ -26,15 +26,16 @@ from detdiff.model.losses import LossStreams
 from detdiff.train import distributed as ddp
 from detdiff.train.batches import Batch
 from detdiff.train.checkpoint import save_checkpoint
-from detdiff.train.optimizer import warmup_cosine
 from detdiff.train.loss_log import IMAGE_FIELDS, OBJECT_FIELDS, LossLogWriter, epoch_dir, merge_rank_epochs
+from detdiff.train.optimizer import warmup_cosine
 
 
 @dataclass
 class TrainState:
     """Everything a hook may look at; ``epoch`` is 0-based, ``step`` counts optimizer steps of the run, ``epochs`` is
     the run's number of epochs (lowered by :class:`TimeLimitHook` when the time limit cuts it), ``seconds`` the
-    training seconds so far (earlier sessions of a resumed run included, where the checkpoint kept them)."""
+    training seconds so far as that hook counts them (0 without a time limit; earlier sessions of a resumed run
+    included, where the checkpoint kept them)."""
 
     config: dict[str, Any]
     rundir: Path

@@ -112,11 +112,20 @@ def save_config(config: dict, path: str | Path) -> None:
     write_text_atomic(path, yaml.safe_dump(config, sort_keys=False))
 
 
+#: The value of a setting that the recipe (:mod:`detdiff.recipe`) resolves from the dataset.
+AUTO = "auto"
+
+
+def is_auto(value: Any) -> bool:
+    """Whether a setting is ``auto`` (left to the recipe)."""
+    return isinstance(value, str) and value.strip().lower() == AUTO
+
+
 def time_limit_seconds(config: dict[str, Any]) -> float | None:
     """``train.time_limit`` (minutes of detector training; the recipe sets it to the detector's share of the budget)
     in seconds, or None: no limit (``none``, or ``auto`` that no recipe resolved)."""
     value = config["train"].get("time_limit")
-    if value is None or str(value).lower() in ("auto", "none"):
+    if value is None or is_auto(value) or str(value).strip().lower() == "none":
         return None
     try:
         minutes = float(value)

@@ -81,14 +81,13 @@ from typing import TYPE_CHECKING, Any, Callable
 import numpy as np
 import torch
 
-from detdiff.config import ConfigError
+from detdiff.config import AUTO, ConfigError, is_auto
 from detdiff.data.coco import CocoDataset
 from detdiff.data.views import ViewTable, logged_view_sides, plan_tiles, small_boxes, whole_view_scale
 
 if TYPE_CHECKING:            # for annotations; the timing functions import folds at call time, as before
     from detdiff.crossfit.folds import CropRows
 
-AUTO = "auto"
 VIEW_MULTIPLE = 32
 ANCHORS_PER_LEVEL = 3
 KMEANS_ITERATIONS = 60
@@ -123,10 +122,6 @@ class Recipe:
     def to_json(self) -> dict[str, Any]:
         return {"settings": self.settings, "reasons": self.reasons, "estimate_seconds": self.estimate,
                 "traded": self.traded, "notes": self.notes}
-
-
-def _is_auto(value: Any) -> bool:
-    return isinstance(value, str) and value.strip().lower() == AUTO
 
 
 def box_view_sides(dataset: CocoDataset, image_size: int) -> np.ndarray:
@@ -253,7 +248,7 @@ def detector_step(config: dict[str, Any], num_classes: int, image_size: int, box
     batch = int(config["train"]["batch_size"])
     precision = str(config["train"].get("precision", "float32")) if precision is None else precision
     detector = Detector.from_config({**config["model"], "weights": None}, num_classes, image_size,
-                                    precision="float32" if _is_auto(precision) else precision).to(device)
+                                    precision="float32" if is_auto(precision) else precision).to(device)
     optimizer = torch.optim.AdamW(detector.parameters(), lr=1e-4)
     pixels = torch.randint(0, 256, (batch, image_size, image_size, 3), dtype=torch.uint8, device=device)
     clip = float(config["train"].get("grad_clip") or 0.0)
@@ -305,7 +300,7 @@ def _resolve_precision(config: dict[str, Any], recipe: Recipe, section: str,
     precision = config[section].get("precision", AUTO)
     if precision not in PRECISIONS:
         raise ConfigError(f"{section}.precision must be one of {', '.join(PRECISIONS)}, got {precision!r}")
-    if _is_auto(precision):
+    if is_auto(precision):
         precision, reason = choose() if choose is not None else (
             "float32", "float32: no timed steps (auto picks bfloat16 only where it is timed faster)")
         config[section]["precision"], recipe.reasons[f"{section}.precision"] = precision, reason
@@ -382,11 +377,11 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
     recipe = Recipe()
     images = int(usable_images if usable_images is not None else dataset.num_images)
     boxes = int((~dataset.iscrowd).sum())
-    auto_view = _is_auto(config["data"]["image_size"])
-    auto_epochs = _is_auto(config["train"]["epochs"])
-    auto_crop = _is_auto(config["crossfit"]["epochs"])
-    auto_tiles = _is_auto(config["data"].get("tile_scale"))
-    auto_folds = _is_auto(config["crossfit"]["folds"])
+    auto_view = is_auto(config["data"]["image_size"])
+    auto_epochs = is_auto(config["train"]["epochs"])
+    auto_crop = is_auto(config["crossfit"]["epochs"])
+    auto_tiles = is_auto(config["data"].get("tile_scale"))
+    auto_folds = is_auto(config["crossfit"]["folds"])
     if auto_folds:
         config["crossfit"]["folds"] = CROP_FOLDS
         recipe.reasons["crossfit.folds"] = (f"{CROP_FOLDS}: each box is judged by a crop model trained on "
@@ -431,9 +426,9 @@ def fit_recipe(dataset: CocoDataset, config: dict[str, Any], *, usable_images: i
     _restate_traded(recipe, config, dataset)
     if boxes:
         _say_small_objects(dataset, config, recipe)
-    if _is_auto(config["data"].get("cache_codec", AUTO)):
+    if is_auto(config["data"].get("cache_codec", AUTO)):
         config["data"]["cache_codec"], recipe.reasons["data.cache_codec"] = choose_cache_codec(dataset, config)
-    if _is_auto(config["train"].get("time_limit", AUTO)):
+    if is_auto(config["train"].get("time_limit", AUTO)):
         config["train"]["time_limit"], recipe.reasons["train.time_limit"] = choose_time_limit(config, recipe,
                                                                                             auto_epochs)
     for key in ("data.image_size", "data.tile_scale", "data.cache_codec", "train.epochs", "train.time_limit",
@@ -464,7 +459,7 @@ def choose_time_limit(config: dict[str, Any], recipe: Recipe, auto_epochs: bool)
 
 def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe | None = None) -> dict[str, Any]:
     """``config`` with ``model.anchor_shapes`` resolved when it is ``auto`` (a copy; the reason goes to ``recipe``)."""
-    if not _is_auto(config["model"].get("anchor_shapes")):
+    if not is_auto(config["model"].get("anchor_shapes")):
         return config
     out = copy.deepcopy(config)
     if not (~dataset.iscrowd).any():
@@ -472,7 +467,7 @@ def _with_anchors(config: dict[str, Any], dataset: CocoDataset, recipe: Recipe |
         return out
     tile_scale = out["data"].get("tile_scale")
     shapes, reason = choose_anchor_shapes(dataset, int(out["data"]["image_size"]), [int(x) for x in out["model"]["strides"]],
-                                          0.0 if _is_auto(tile_scale) else float(tile_scale or 0.0),
+                                          0.0 if is_auto(tile_scale) else float(tile_scale or 0.0),
                                           float(out["recipe"]["min_object_px"]))
     out["model"]["anchor_shapes"] = shapes
     if recipe is not None:
@@ -499,7 +494,7 @@ def budget_seconds(cfg: dict[str, Any], images: int, tiled_share: float = 0.0, b
     (the share of the images whose small boxes need tiles: their tiles are more work of the same kind), plus
     ``seconds_per_box`` per box (the crop models judge every box, and a budget counted in images alone starved
     them on box-dense sets), at least ``min_budget_minutes``."""
-    if _is_auto(cfg["budget_minutes"]):
+    if is_auto(cfg["budget_minutes"]):
         return max(60.0 * float(cfg["min_budget_minutes"]),
                    float(cfg["seconds_per_image"]) * images * (1.0 + float(tiled_share))
                    + float(cfg.get("seconds_per_box", 0.0)) * boxes)
@@ -654,7 +649,7 @@ def _training_budget(recipe: Recipe, cfg: dict[str, Any], budget: float, other: 
     :data:`MIN_TRAINING_SHARE` of it; the note that says so."""
     training = max(budget - other, MIN_TRAINING_SHARE * budget)
     whole = f"budget {budget / 60:.1f} min for the whole audit"
-    if _is_auto(cfg["budget_minutes"]):
+    if is_auto(cfg["budget_minutes"]):
         tiles = (f", x{1 + tiled:.2f} for the {tiled:.0%} of the images whose small boxes need tiles" if tiled > 0
                  else "")
         whole += (f" ({cfg['seconds_per_image']} s per image{tiles}, + {cfg.get('seconds_per_box', 0)} s per box; "

@@ -133,19 +133,18 @@ def box_looseness(predicted: np.ndarray, given: np.ndarray) -> np.ndarray:
     return out
 
 
-def probe_hits(proposal_image: np.ndarray, proposal_box: np.ndarray, probe_image: np.ndarray,
-               probe_box: np.ndarray, min_iou: float = 0.5) -> np.ndarray:
-    """``bool [N]``: proposals (image row, xywh box) that cover a probe box of their image with IoU >= ``min_iou``."""
-    hit = np.zeros(len(proposal_image), dtype=bool)
+def probe_iou(proposal_image: np.ndarray, proposal_box: np.ndarray, probe_image: np.ndarray,
+              probe_box: np.ndarray) -> np.ndarray:
+    """``float [N]``: each proposal's (image row, xywh box) best IoU with a probe box of its image (0 where none)."""
+    best = np.zeros(len(proposal_image), dtype=np.float64)
     if not len(proposal_image) or not len(probe_image):
-        return hit
+        return best
     pi, qi = np.nonzero(proposal_image[:, None] == probe_image[None, :])        # same-image pairs
     if len(pi):
         both = np.concatenate([xywh_to_xyxy(proposal_box[pi]), xywh_to_xyxy(probe_box[qi])])
         idx = np.arange(len(pi))
-        close = pair_iou(both, idx, idx + len(pi)) >= min_iou
-        hit[pi[close]] = True
-    return hit
+        np.maximum.at(best, pi, pair_iou(both, idx, idx + len(pi)))
+    return best
 
 
 def check_kind(item_scores: np.ndarray, probe_scores: np.ndarray) -> Calibration:
@@ -337,7 +336,8 @@ def missing_box_evidence(dataset: CocoDataset, proposals: pd.DataFrame, missing_
     box = pooled[columns[1:5]].to_numpy(dtype=np.float64)
     score = pooled["score"].to_numpy(dtype=np.float64)
     probe_image, probe_box = dataset.ann_image_index[missing_rows], dataset.boxes[missing_rows]
-    drawn_pooled = probe_hits(image, box, probe_image, probe_box, min_iou=PROBE_REACH_IOU)
+    reach = probe_iou(image, box, probe_image, probe_box)
+    drawn_pooled = reach >= PROBE_REACH_IOU
     drawn = drawn_pooled[:len(proposals)]
     per_proposal: Calibration | None = None
     image_best: Calibration | None = None
@@ -354,7 +354,7 @@ def missing_box_evidence(dataset: CocoDataset, proposals: pd.DataFrame, missing_
         probe_images[probe_image] = True
         image_best = check_kind(all_best[usable & ~probe_images], all_best[usable & probe_images])
         listed = score[:len(proposals)]
-        covers = probe_hits(image[:len(proposals)][drawn], box[:len(proposals)][drawn], probe_image, probe_box)
+        covers = reach[:len(proposals)][drawn] >= 0.5          # a usable box for the probe's object
         per_proposal = calibrate(listed[~drawn], listed[drawn],
                                  separates=image_best.calibrated and image_best.auroc_raw > 0.5)
         per_proposal.posterior = per_proposal.posterior * cover_share(listed[drawn], covers, listed[~drawn])

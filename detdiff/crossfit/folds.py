@@ -29,6 +29,7 @@ import torch
 from tqdm import tqdm
 
 from detdiff.boxes import overlaps_objects
+from detdiff.config import is_auto
 from detdiff.crossfit import crop_model as cm
 from detdiff.crossfit.crops import MIN_SIDE, STORE, crop_extent
 from detdiff.data.coco import CocoDataset
@@ -372,7 +373,7 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
     object (:class:`Places`), each by the fold model of its image.
     """
     cfg, flips, seed = config["crossfit"], str(config["train"]["flips"]), int(config["train"]["seed"])
-    if str(cfg["folds"]).strip().lower() == "auto":
+    if is_auto(cfg["folds"]):
         raise ValueError("crossfit.folds is 'auto': the recipe (detdiff.recipe.fit_recipe) resolves it before the "
                          "cross-fit; pass a number to call cross_fit directly")
     folds = int(cfg["folds"])

@@ -210,6 +210,15 @@ def lint_code_counts(findings: dict[str, Any]) -> pd.DataFrame:
     return table.sort_values(["count", "code"], ascending=[False, True], kind="stable").reset_index(drop=True)
 
 
+def epochs_cut(info: dict[str, Any]) -> tuple[int, int] | None:
+    """``(done, planned)`` epochs where the time limit (``train.time_limit``) ended training early, from ``run.json``;
+    None otherwise."""
+    done, planned = info.get("epochs_done"), info.get("epochs_planned")
+    if isinstance(done, int) and isinstance(planned, int) and done < planned:
+        return done, planned
+    return None
+
+
 def lean_clause(lean: str, before: str, after: str) -> str:
     """"usually reads high" / "usually reads low" between ``before`` and ``after`` for a list's expected precision
     (:meth:`RunFolder.expected_precision`), ``""`` where the estimate has no usual lean."""

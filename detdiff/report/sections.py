@@ -20,6 +20,7 @@ from detdiff.report.run_folder import (
     STREAMS,
     SUSPECT_KINDS,
     RunFolder,
+    epochs_cut,
     lean_clause,
     lint_code_counts,
     lint_totals,
@@ -378,10 +379,8 @@ def _flatten(config: dict[str, Any], prefix: str = "") -> list[tuple[str, Any]]:
 
 def _epochs_trained(info: dict) -> str:
     """Epochs done, with the planned count where the time limit ended training early."""
-    done, planned = info.get("epochs_done", ""), info.get("epochs_planned")
-    if isinstance(done, int) and isinstance(planned, int) and planned > done:
-        return f"{done} of {planned} (train.time_limit reached)"
-    return fmt(done)
+    cut = epochs_cut(info)
+    return f"{cut[0]} of {cut[1]} (train.time_limit reached)" if cut else fmt(info.get("epochs_done", ""))
 
 
 def _settings_section(page: Page) -> Markup:

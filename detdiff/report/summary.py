@@ -7,7 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from detdiff.report.advice import cause_subject, significant_causes, spearman_phrase
-from detdiff.report.run_folder import STREAMS, SUSPECT_KINDS, RunFolder, lean_clause
+from detdiff.report.run_folder import STREAMS, SUSPECT_KINDS, RunFolder, epochs_cut, lean_clause
 from detdiff.report.wording import STREAM_TITLES, format_ap, format_percent, fraction_words
 
 _CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
@@ -27,9 +27,9 @@ def terminal_summary(rundir: str | Path) -> str:
              f"{info.get('num_annotations', len(run.objects))} boxes, "
              f"{info.get('num_categories', len(run.classes))} classes"]
     lines.append(f"Detector: AP50 {format_ap(run.metrics.get('AP50'))} (AP {format_ap(run.metrics.get('AP'))})")
-    done, planned = info.get("epochs_done"), info.get("epochs_planned")
-    if isinstance(done, int) and isinstance(planned, int) and done < planned:
-        lines.append(f"  training ended after {done} of {planned} epochs to keep to train.time_limit "
+    cut = epochs_cut(info)
+    if cut:
+        lines.append(f"  training ended after {cut[0]} of {cut[1]} epochs to keep to train.time_limit "
                      f"({info['config']['train']['time_limit']} min); --budget MINUTES buys more")
     warning = run.quality_warning()
     if warning:

@@ -29,6 +29,7 @@ import yaml
 from detdiff.analysis.validity import score_against_truth
 from detdiff.data.scenarios import SCENARIO_FLIPS, generate_demo
 from detdiff.pipeline import run_audit
+from detdiff.report.run_folder import epochs_cut
 
 GOALS = {("wrong_class", "auroc_evidence"): 0.95, ("loose_box", "auroc_evidence"): 0.90,
          ("missing_box", "auroc_evidence"): 0.85, ("wrong_class", "precision_at_k"): 0.8,
@@ -69,6 +70,7 @@ def run_one(scenario: str, seed: int, num_images: int, out: Path, overrides: dic
     return {"scenario": scenario, "seed": seed, "images": num_images, "generate_s": t1 - t0, "audit_s": t2 - t1,
             "AP50": metrics.get("AP50"), "AP50_small": metrics.get("AP50_small"), "timings": run_info.get("timings"),
             "plan_seconds": plan, "plan_ratio": plan.get("ratio"), "epochs_done": run_info.get("epochs_done"),
+            "epochs_planned": run_info.get("epochs_planned"),
             "recipe": json.loads((rundir / "recipe.json").read_text()).get("settings"), "scores": scores}
 
 
@@ -92,8 +94,8 @@ def print_run(result: dict) -> None:
 
 def _epochs(result: dict, recipe: dict) -> str:
     """The detector's epochs: done, and planned where the time limit (train.time_limit) ended training early."""
-    done, planned = result.get("epochs_done"), recipe.get("train.epochs")
-    return f"{done} of {planned} (time limit)" if isinstance(done, int) and done < planned else f"{planned}"
+    cut = epochs_cut(result)
+    return f"{cut[0]} of {cut[1]} (time limit)" if cut else f"{recipe.get('train.epochs')}"
 
 
 def print_plan(plan: dict) -> None:

@@ -279,7 +279,8 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
                                 everything["image_index"].to_numpy()[judged], boxes[judged], object_p[judged])
     expected = np.r_[np.nan, object_p[1:]]
     np.testing.assert_array_equal(place_objectness(everything, prediction), expected)
-    listable, image_only = judged_places(ds, seen_twice, final_only, prediction)
+    covering = np.arange(ds.num_annotations)
+    listable, image_only = judged_places(ds, seen_twice, final_only, prediction, covering, 0.3)
     assert image_only is None and len(listable) == len(everything)
     w = PLACE_DETECTOR_WEIGHT
     np.testing.assert_allclose(listable["score"], (np.nan_to_num(expected) + w * everything["score"]) / (1 + w))
@@ -291,8 +292,48 @@ def test_final_pass_detections_that_match_no_annotation(run, tmp_path) -> None:
     probs = np.full((len(judged), num_classes), 0.1 / max(num_classes - 1, 1))
     probs[:, num_classes - 1] = 0.9
     prediction.place_probs = probs
-    classed, _ = judged_places(ds, seen_twice, final_only, prediction)
+    classed, _ = judged_places(ds, seen_twice, final_only, prediction, covering, 0.3)
     assert (classed["suggested_category_id"].iloc[1:] == ds.category_ids[-1]).all()
     assert classed["suggested_category_id"].iat[0] == everything["suggested_category_id"].iat[0]
     assert classed["evidence"].iloc[1:].str.contains(f"most like a '{ds.category_names[-1]}' \\(0.90\\)").all()
     np.testing.assert_allclose(classed["score"], listable["score"])        # the class does not change the ranking
+
+
+def test_refined_places_take_the_crop_models_box_and_drop_annotated_and_duplicate_places() -> None:
+    # The crop model's box replaces a place's detector box (clipped to the image); a place whose box now lies on an
+    # annotation (IoU >= 0.3, the rule that made it unannotated) is dropped, and places that now overlap at IoU >= 0.5
+    # in one image keep the highest-scored: the kept set of torchvision.ops.batched_nms (groups = images).
+    from torchvision.ops import batched_nms
+
+    from detdiff.analysis.self_check import PLACE_DUPLICATE_IOU, refine_places
+
+    ds = build_dataset(_coco())
+    cols = ["suggested_x", "suggested_y", "suggested_w", "suggested_h"]
+    places = pd.DataFrame({"image_index": [0, 0, 0, 0, 1, 1], "score": [0.9, 0.8, 0.7, 0.6, 0.5, 0.4],
+                           "suggested_x": 100.0, "suggested_y": 100.0, "suggested_w": 20.0, "suggested_h": 20.0,
+                           "x": 100.0, "y": 100.0, "w": 20.0, "h": 20.0})
+    annotated = ds.boxes[0]                                  # image 0's first annotation, xywh
+    refined = np.array([[150.0, 120.0, 30.0, 30.0],          # free: kept as drawn
+                        annotated,                           # on an annotation: dropped
+                        [151.0, 121.0, 30.0, 30.0],          # a duplicate of the first, lower score: dropped
+                        [np.nan] * 4,                        # not judged: keeps its detector box
+                        [190.0, 150.0, 30.0, 30.0],          # runs past the 200x160 image: clipped
+                        [60.0, 100.0, 20.0, 20.0]])          # another image: never suppressed by image 0's places
+    out = refine_places(ds, places, refined, np.arange(ds.num_annotations), 0.3)
+    boxes = out[cols].to_numpy()
+    np.testing.assert_allclose(boxes[0], [150, 120, 30, 30])
+    np.testing.assert_allclose(boxes[1], [100, 100, 20, 20])
+    np.testing.assert_allclose(boxes[2], [190, 150, 10, 10])
+    np.testing.assert_allclose(out[["x", "y", "w", "h"]].to_numpy(), boxes)        # what the lists show
+    assert out["score"].tolist() == [0.9, 0.6, 0.5, 0.4]
+    # the same kept set from torchvision's batched_nms over the places that are not on an annotation
+    free = places.drop(index=1)
+    drawn = np.where(np.isfinite(refined).all(axis=1)[:, None], refined, places[cols].to_numpy())[[0, 2, 3, 4, 5]]
+    drawn[3] = [190, 150, 10, 10]
+    xyxy = box_convert(torch.from_numpy(drawn), "xywh", "xyxy")
+    keep = batched_nms(xyxy, torch.tensor(free["score"].to_numpy()), torch.tensor(free["image_index"].to_numpy()),
+                       PLACE_DUPLICATE_IOU)
+    assert sorted(free["score"].to_numpy()[keep.numpy()].tolist(), reverse=True) == out["score"].tolist()
+    # the annotated place lay on the annotation: its IoU with it is at least 0.3 (torchvision.ops.box_iou)
+    assert float(box_iou(box_convert(torch.from_numpy(annotated[None]), "xywh", "xyxy"),
+                         box_convert(torch.from_numpy(refined[1:2]), "xywh", "xyxy"))) >= 0.3

@@ -415,11 +415,16 @@ def unannotated_places(dataset: CocoDataset, rundir: Path, missing_rows: np.ndar
     detected at all: that, not the places per image, bounds the missing-box lists on real-size data."""
     log = LossLog.open(rundir / "log")
     late = late_log(log, float(config["analysis"]["late_fraction"]))
-    covering = np.setdiff1d(np.arange(dataset.num_annotations), missing_rows)
+    covering = covering_rows(dataset, missing_rows)
     final = final_unmatched(dataset, read_detections(rundir / "detections.json", dataset), covering,
                             max_iou=float(config["log"]["unmatched_max_iou"]),
                             per_image=int(config["crossfit"]["places_per_image"]))
     return add_final_sightings(dataset, missing_box_suspects(dataset, log, late.epochs, covering), final)
+
+
+def covering_rows(dataset: CocoDataset, missing_rows: np.ndarray) -> np.ndarray:
+    """Annotation rows that make a place annotated: every row but the missing-box probes ``missing_rows``."""
+    return np.setdiff1d(np.arange(dataset.num_annotations), missing_rows)
 
 
 def late_log(log: LossLog, late_fraction: float) -> LossLog:

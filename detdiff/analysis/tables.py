@@ -154,7 +154,8 @@ def analyze_run(rundir: str | Path, dataset: CocoDataset, config: dict) -> Analy
                                                                     int(config["train"]["seed"]))
         objects = pd.concat([objects, evidence], axis=1)
         proposals, final_only = self_check.judged_places(
-            dataset, *suspects.unannotated_places(dataset, rundir, missing_rows, config), prediction)
+            dataset, *suspects.unannotated_places(dataset, rundir, missing_rows, config), prediction,
+            suspects.covering_rows(dataset, missing_rows), float(config["log"]["unmatched_max_iou"]))
         kept, image_evidence, proposal_cal, image_cal = self_check.missing_box_evidence(
             dataset, proposals, missing_rows, usable, image_only=final_only)
         images = pd.concat([images, image_evidence], axis=1)

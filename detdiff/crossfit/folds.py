@@ -5,8 +5,8 @@ label learns to agree with it (measured: longer detector training raised AP50 an
 AUROC). As in confident learning's out-of-sample predicted probabilities (Northcutt, Jiang & Chuang, JAIR
 2021), the images are split into ``crossfit.folds`` folds; fold ``k``'s model trains on the others and
 predicts the class probabilities and the box of every annotation of fold ``k``, and the box around every
-virtual box probe there (a loosened copy of a box, :mod:`detdiff.data.probes`), and the objectness of every place
-in fold ``k`` where the detector saw an unannotated object (:class:`Places`). Each fold's predictions are saved as
+virtual box probe there (a loosened copy of a box, :mod:`detdiff.data.probes`), and the objectness, class and box
+of every place in fold ``k`` where the detector saw an unannotated object (:class:`Places`). Each fold's predictions are saved as
 soon as they exist (``RUNDIR/crossfit/fold_K.npz``, renamed into place), so an interrupted audit redoes only
 unfinished folds.
 
@@ -61,8 +61,9 @@ class CrossFitResult:
     [P, 4]`` their loosened boxes and ``probe_box [P, 4]`` the box predicted around each (xywh px);
     ``seconds`` the training time of the fold models; ``place_image [N]`` / ``place_box [N, 4]`` (xywh px) the
     places judged for an unannotated object (:mod:`detdiff.crossfit.places`), ``place_object_p [N]`` the
-    objectness each got from the fold model that did not train on its image (NaN where none) and ``place_probs
-    [N, C]`` the class probabilities it gave the place (NaN where none; empty in run folders of older versions).
+    objectness each got from the fold model that did not train on its image (NaN where none), ``place_probs
+    [N, C]`` the class probabilities it gave the place and ``place_refined [N, 4]`` the box it drew around the place
+    (xywh px; both NaN where none, empty in run folders of older versions).
     """
 
     probs: np.ndarray
@@ -76,6 +77,7 @@ class CrossFitResult:
     place_box: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
     place_object_p: np.ndarray = field(default_factory=lambda: np.zeros(0))
     place_probs: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.float32))
+    place_refined: np.ndarray = field(default_factory=lambda: np.zeros((0, 4)))
 
 
 def assign_folds(num_images: int, folds: int, seed: int) -> np.ndarray:
@@ -387,6 +389,7 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
     place_rows = _place_rows(places, original, inputs)
     place_object_p = np.full(len(places.image), np.nan)
     place_probs = np.full((len(places.image), original.num_classes), np.nan, np.float32)
+    place_units = np.full((len(places.image), 4), np.nan)
     fold_of_image = assign_folds(original.num_images, folds, seed)
     fold = fold_of_image[original.ann_image_index]
     num_classes = original.num_classes
@@ -404,6 +407,8 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
                     place_object_p[saved["place_positions"]] = saved["place_object_p"]
                     if "place_probs" in saved.files:        # folds saved by older versions lack them
                         place_probs[saved["place_positions"]] = saved["place_probs"]
+                    if "place_units" in saved.files:
+                        place_units[saved["place_positions"]] = saved["place_units"]
                     seconds += float(saved["seconds"])
                     continue
         todo.append(k)
@@ -421,20 +426,20 @@ def cross_fit(original: CocoDataset, trained: CocoDataset, crops: np.ndarray, us
             _, pb, _ = _predict(model, inputs, inputs.probe_rows[here], inputs.probe_units[here],
                                 inputs.probe_geometry[here], flips)
             mine = np.flatnonzero(fold_of_image[places.image] == k)
-            pp, _, po = _predict(model, place_rows, mine, place_rows.units[mine], place_rows.geometry[mine], flips)
+            pp, pu, po = _predict(model, place_rows, mine, place_rows.units[mine], place_rows.geometry[mine], flips)
             elapsed = time.perf_counter() - start
             probs[rows], box_units[rows] = p, b
             probe_units[here] = pb
-            place_object_p[mine], place_probs[mine] = po, pp
+            place_object_p[mine], place_probs[mine], place_units[mine] = po, pp, pu
             _save_fold(out_dir / f"fold_{k}.npz", key=np.array(key), rows=rows, probs=p, box=b,
                        probe_positions=here, probe_box=pb, place_positions=mine, place_object_p=po, place_probs=pp,
-                       seconds=np.float64(elapsed))
+                       place_units=pu, seconds=np.float64(elapsed))
             seconds += elapsed
     box = from_reference_units(box_units, inputs.reference)
     probe_box = from_reference_units(probe_units, inputs.reference[inputs.probe_rows])
     result = CrossFitResult(probs, box, fold, inputs.probe_rows, np.asarray(probe_boxes, np.float64), probe_box,
                             seconds, places.image.astype(np.int64), places.box.astype(np.float64), place_object_p,
-                            place_probs)
+                            place_probs, from_reference_units(place_units, reference_boxes(places.box)))
     _save_fold(out_dir / PREDICTIONS_FILE, **{k: np.asarray(v) for k, v in vars(result).items()})
     return result
 

@@ -311,7 +311,7 @@ def test_refined_places_take_the_crop_models_box_and_drop_annotated_and_duplicat
     cols = ["suggested_x", "suggested_y", "suggested_w", "suggested_h"]
     places = pd.DataFrame({"image_index": [0, 0, 0, 0, 1, 1], "score": [0.9, 0.8, 0.7, 0.6, 0.5, 0.4],
                            "suggested_x": 100.0, "suggested_y": 100.0, "suggested_w": 20.0, "suggested_h": 20.0,
-                           "x": 100.0, "y": 100.0, "w": 20.0, "h": 20.0})
+                           "x": 100.0, "y": 100.0, "w": 20.0, "h": 20.0, "evidence": "seen"})
     annotated = ds.boxes[0]                                  # image 0's first annotation, xywh
     refined = np.array([[150.0, 120.0, 30.0, 30.0],          # free: kept as drawn
                         annotated,                           # on an annotation: dropped
@@ -325,6 +325,9 @@ def test_refined_places_take_the_crop_models_box_and_drop_annotated_and_duplicat
     np.testing.assert_allclose(boxes[1], [100, 100, 20, 20])
     np.testing.assert_allclose(boxes[2], [190, 150, 10, 10])
     np.testing.assert_allclose(out[["x", "y", "w", "h"]].to_numpy(), boxes)        # what the lists show
+    assert out["evidence"].tolist() == ["seen; it draws the object at [150, 120, 30, 30]", "seen",
+                                        "seen; it draws the object at [190, 150, 10, 10]",
+                                        "seen; it draws the object at [60, 100, 20, 20]"]
     assert out["score"].tolist() == [0.9, 0.6, 0.5, 0.4]
     # the same kept set from torchvision's batched_nms over the places that are not on an annotation
     free = places.drop(index=1)

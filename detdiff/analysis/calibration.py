@@ -37,6 +37,21 @@ other item is a mixture: a share ``pi`` of real faults (scoring like the probes:
   unlabelled ones (their AUROC against probes is taken as 0.5): ``(A - pi / 2) / (1 - pi)``, with the
   standard error of Hanley & McNeil (Radiology, 1982).
 
+Tried and not kept (same run folders, against the planted truth):
+
+* **Probes matched to the faults' severity.** Box probes in five IoU bands (0.30-0.80), crop models trained again,
+  the band taken whose tail ratios stop falling without rising (the mildest severity the items' upper tail is
+  consistent with). Streetcam seed 5 (planted IoU 0.50-0.70): the 0.55-0.65 band levels off at a fault share of
+  0.054 against 0.052 true. Aerial seed 6 (planted 0.55-0.80): clean boxes' scores have a heavy tail there (small
+  boxes), no band levels off, the 0.72-0.80 band read 0.089 and the loose list grew from 184 to 1,330 boxes at
+  0.42 true precision against 0.72 self-estimated; with a share near the truth (0.040, the 0.65-0.72 band) a
+  495-box list read 0.79 against 0.51 true.
+  Where the evidence cannot tell mild faults from clean boxes' noise, no choice of probes recovers the truth.
+* **The list's precision estimated by sample splitting** (the list cut with half the probes, its precision read with
+  the other half, both ways, four random halvings): missing-box lists of fifteen audits, mean absolute error
+  against the truth 0.080 -> 0.079; half the probes make each estimate noisier by as much as it removes the
+  selection bias.
+
 Score direction: higher = more suspicious. NaN scores rank lowest.
 """
 

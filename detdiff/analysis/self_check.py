@@ -273,7 +273,8 @@ def place_judgement(places: pd.DataFrame, prediction: CrossFitResult) -> tuple[n
 def refine_places(dataset: CocoDataset, places: pd.DataFrame, refined: np.ndarray, covering: np.ndarray,
                   max_iou: float) -> pd.DataFrame:
     """The places with the box the crop model drew around each (``refined [N, 4]`` xywh px, clipped to the image)
-    as ``suggested_x/y/w/h`` and, where the frame has them, ``x/y/w/h`` (a place without one keeps its detector box).
+    as ``suggested_x/y/w/h`` and, where the frame has them, ``x/y/w/h``, said in the ``evidence`` (a place without
+    one keeps its detector box).
     Places whose box now lies on an annotation of ``covering`` (IoU ``>= max_iou``, the rule that made them
     unannotated places) are dropped, and of places that now overlap at IoU >= :data:`PLACE_DUPLICATE_IOU` in one
     image the highest-scored is kept (:func:`grouped_nms`). Order kept."""
@@ -289,6 +290,9 @@ def refine_places(dataset: CocoDataset, places: pd.DataFrame, refined: np.ndarra
     out[cols] = box
     if "x" in out:                                   # a suspect without an annotation shows its proposed box
         out[["x", "y", "w", "h"]] = box
+    if "evidence" in out:
+        out["evidence"] = [f"{text}; it draws the object at [{x:.0f}, {y:.0f}, {w:.0f}, {h:.0f}]" if ok else text
+                           for text, (x, y, w, h), ok in zip(out["evidence"], box, usable)]
     annotated = probe_iou(image, box, dataset.ann_image_index[covering], dataset.boxes[covering])
     out = out[annotated < max_iou]
     keep = grouped_nms(torch.from_numpy(xywh_to_xyxy(out[cols].to_numpy(np.float64))),
@@ -363,9 +367,6 @@ def judged_places(dataset: CocoDataset, seen_twice: pd.DataFrame, final_only: pd
                                                         probs[np.arange(len(places)), best], classed)]
     w = PLACE_DETECTOR_WEIGHT
     places["score"] = (object_p + w * places["score"].to_numpy(np.float64)) / (1 + w)
-    drawn = np.isfinite(refined).all(axis=1)
-    places["evidence"] = [f"{text}; it draws the object at [{x:.0f}, {y:.0f}, {bw:.0f}, {bh:.0f}]" if ok else text
-                          for text, (x, y, bw, bh), ok in zip(places["evidence"], np.nan_to_num(refined), drawn)]
     return refine_places(dataset, places, refined, covering, max_iou), None
 
 

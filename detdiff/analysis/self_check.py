@@ -305,7 +305,9 @@ def judged_places(dataset: CocoDataset, seen_twice: pd.DataFrame, final_only: pd
                   prediction: CrossFitResult, covering: np.ndarray,
                   max_iou: float) -> tuple[pd.DataFrame, pd.DataFrame | None]:
     """The places for an unannotated object (:func:`detdiff.analysis.suspects.unannotated_places`) scored with the
-    cross-fit's out-of-sample objectness: ``(listable, image_only)`` for :func:`missing_box_evidence`.
+    cross-fit's out-of-sample objectness: ``(listable, image_only)`` for :func:`missing_box_evidence`. ``covering``
+    and ``max_iou``: the annotation rows, and the IoU with one of them, that make a refined place annotated
+    (:func:`refine_places`; :func:`detdiff.analysis.suspects.covering_rows` and ``log.unmatched_max_iou``).
 
     Where the cross-fit judged the places, every place is listable and scored ``(objectness + w x detector score) /
     (1 + w)``, ``w`` = :data:`PLACE_DETECTOR_WEIGHT` (the detector score: the mean of the two sightings, 0 where

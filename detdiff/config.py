@@ -134,3 +134,8 @@ def time_limit_seconds(config: dict[str, Any]) -> float | None:
     if minutes <= 0:
         raise ConfigError(f"train.time_limit must be positive minutes, got {value!r}")
     return 60.0 * minutes
+
+
+def time_limit_floor(config: dict[str, Any]) -> int:
+    """The fewest epochs the time limit leaves the detector: ``recipe.min_epochs``, or ``train.epochs`` if fewer."""
+    return min(int(config["train"]["epochs"]), int(config["recipe"]["min_epochs"]))

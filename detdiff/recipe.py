@@ -81,7 +81,7 @@ from typing import TYPE_CHECKING, Any, Callable
 import numpy as np
 import torch
 
-from detdiff.config import AUTO, ConfigError, is_auto
+from detdiff.config import AUTO, ConfigError, is_auto, time_limit_floor
 from detdiff.data.coco import CocoDataset
 from detdiff.data.views import ViewTable, logged_view_sides, plan_tiles, small_boxes, whole_view_scale
 
@@ -450,7 +450,7 @@ def choose_time_limit(config: dict[str, Any], recipe: Recipe, auto_epochs: bool)
         return "none", f"none: {why}, so the epochs are not cut for time"
     minutes = round(max(estimate["training_budget_s"] - estimate["crop_models_s"],
                         estimate["detector_training_s"]) / 60.0, 1)
-    floor = min(int(config["train"]["epochs"]), int(config["recipe"]["min_epochs"]))
+    floor = time_limit_floor(config)
     estimated = estimate["detector_training_s"] / 60.0
     return minutes, (f"{minutes:g} min: the detector's share of the budget (estimated {estimated:.1f} min); if its "
                      f"epochs run slower than timed, training ends at the last epoch that fits (not under {floor}) "

@@ -258,15 +258,14 @@ def place_judgement(places: pd.DataFrame, prediction: CrossFitResult) -> tuple[n
     row = found["row"].to_numpy(np.float64)
     known = np.isfinite(row)
 
-    def joined(stored: np.ndarray, width: int) -> np.ndarray:
+    def joined(stored: np.ndarray) -> np.ndarray:          # [N, D] rows of the judged places; D = 0 where none kept
         stored = np.asarray(stored, np.float64)
-        out = np.full((len(found), width if stored.ndim == 2 and len(stored) == len(judged) else 0), np.nan)
-        if out.shape[1]:
-            out[known] = stored[row[known].astype(np.int64)]
+        out = np.full((len(found), stored.shape[1] if stored.ndim == 2 and len(stored) == len(judged) else 0), np.nan)
+        out[known] = stored[row[known].astype(np.int64)] if out.shape[1] else out[known]
         return out
 
-    refined = joined(prediction.place_refined, 4)
-    return (found["object_p"].to_numpy(np.float64), joined(prediction.place_probs, prediction.place_probs.shape[-1]),
+    refined = joined(prediction.place_refined)
+    return (found["object_p"].to_numpy(np.float64), joined(prediction.place_probs),
             refined if refined.shape[1] else np.full((len(found), 4), np.nan))
 
 

@@ -30,7 +30,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from detdiff.config import ConfigError, time_limit_seconds
+from detdiff.config import ConfigError, time_limit_floor, time_limit_seconds
 from detdiff.data.coco import CocoDataset
 from detdiff.data.image_cache import ImageCache
 from detdiff.model.detector import Detector
@@ -249,8 +249,7 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
     hooks: list[Hook] = [LossLogHook(log_dir, dataset, info, config["log"]["unmatched_per_image"])]
     limit = time_limit_seconds(config)
     if limit is not None:
-        hooks.append(TimeLimitHook(limit, min(epochs, int(config["recipe"]["min_epochs"])),
-                                   int(train_cfg["warmup_iters"])))
+        hooks.append(TimeLimitHook(limit, time_limit_floor(config), int(train_cfg["warmup_iters"])))
     hooks.append(CheckpointHook(ckpt_path, {"dataset": dataset_key}))
     if progress and info.is_main:
         hooks.append(ProgressHook())
@@ -280,4 +279,3 @@ def _train(dataset: CocoDataset, cache: ImageCache, config: dict[str, Any], rund
                        resumed_from=resumed_from, epoch_seconds=epoch_seconds,
                        epochs_planned=state.cut_from or state.epochs, threads=threads,
                        world_size=info.world_size, device=str(info.device))
-
